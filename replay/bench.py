@@ -1,0 +1,295 @@
+"""``replay bench``: speed and peak memory of every kernel on this machine.
+
+Each case runs in a fresh child process (so its peak RSS is its own), on seeded synthetic
+campaigns built in memory, and reports the median of several timed runs after a warm-up.
+Every case is also given as a fraction of the *reference pass*: one numba pass over the
+same columns (read value and min_win_price, compare with a bid, accumulate spend), the
+fastest any threshold rule could go here. That fraction compares across machines.
+
+JSON keys are stable and documented in DEVELOPERS.md ("Benchmarks").
+"""
+
+from __future__ import annotations
+
+import os
+import platform
+import resource
+import statistics
+import tempfile
+import time
+from collections.abc import Callable
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass
+from multiprocessing import get_context
+from pathlib import Path
+
+import numpy as np
+
+BENCH_FORMAT_VERSION = 1
+
+
+@dataclass(frozen=True)
+class BenchConfig:
+    """Sizes of one bench run (rows per campaign)."""
+
+    rows: int = 10_000_000
+    ingest_rows: int = 5_000_000
+    repeats: int = 5
+    seed: int = 11
+
+    @classmethod
+    def quick(cls) -> BenchConfig:
+        return cls(rows=200_000, ingest_rows=100_000, repeats=2)
+
+
+def _peak_rss_mb() -> float:
+    # ru_maxrss is in kilobytes on Linux.
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+
+
+def _median_seconds(fn: Callable[[], object], repeats: int, warmup: int = 1) -> float:
+    for _ in range(warmup):
+        fn()
+    times = []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t0)
+    return statistics.median(times)
+
+
+def _result(rows: int, seconds: float, **extra: object) -> dict[str, object]:
+    return {
+        "rows": int(rows),
+        "seconds": float(seconds),
+        "rows_per_s": float(rows / seconds) if seconds > 0 else None,
+        "peak_rss_mb": _peak_rss_mb(),
+        **extra,
+    }
+
+
+# --------------------------------------------------------------------------- cases
+# Each case runs in its own child process and returns a dict from _result().
+
+
+def _case_reference(cfg: BenchConfig) -> dict[str, object]:
+    from replay.kernels.reference import reference_pass
+    from replay.scenario import synthetic_campaign
+
+    arrays = synthetic_campaign(cfg.rows, seed=cfg.seed)
+    multiplier = float(np.median(arrays.min_win_price / np.maximum(arrays.value, 1e-12)))
+    seconds = _median_seconds(
+        lambda: reference_pass(arrays.value, arrays.min_win_price, multiplier), cfg.repeats
+    )
+    return _result(len(arrays), seconds)
+
+
+def _write_ingest_inputs(cfg: BenchConfig, folder: Path) -> tuple[Path, Path, Path]:
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+    import pyarrow.parquet as pq
+
+    from replay.scenario import synthetic_campaign
+
+    arrays = synthetic_campaign(cfg.ingest_rows, seed=cfg.seed, campaign_id="bench")
+    placements = np.array(arrays.placements, dtype=object)
+    table = pa.table({
+        "ts": pa.array(arrays.ts_us, pa.timestamp("us", tz="UTC")),
+        "campaign_id": pa.array(np.full(len(arrays), "bench", dtype=object), pa.string()),
+        "placement": pa.array(placements[arrays.placement_code], pa.string()),
+        "pricing": pa.array(np.where(arrays.first_price, "first_price", "second_price"),
+                            pa.string()),
+        "value": arrays.value,
+        "min_win_price": arrays.min_win_price,
+        "request_id": pa.array(np.char.add("r", np.arange(len(arrays)).astype(str)),
+                               pa.string()),
+        "charge_prob": arrays.charge_prob,
+    })
+    parquet_path = folder / "bench.parquet"
+    csv_path = folder / "bench.csv"
+    pq.write_table(table, parquet_path)
+    pacsv.write_csv(table, csv_path)
+    campaigns_path = folder / "campaigns.csv"
+    campaigns_path.write_text("campaign_id,budget\nbench,1000\n")
+    return parquet_path, csv_path, campaigns_path
+
+
+def _case_ingest(cfg: BenchConfig, fmt: str) -> dict[str, object]:
+    import shutil
+
+    from replay.ingest import ingest
+
+    with tempfile.TemporaryDirectory(prefix="replay-bench-") as tmp:
+        folder = Path(tmp)
+        parquet_path, csv_path, campaigns_path = _write_ingest_inputs(cfg, folder)
+        source = parquet_path if fmt == "parquet" else csv_path
+        counter = iter(range(10_000))
+
+        def run() -> None:
+            target = folder / f"catalog{next(counter)}"
+            ingest([source], target, campaigns=campaigns_path)
+            shutil.rmtree(target)
+
+        seconds = _median_seconds(run, max(1, min(cfg.repeats, 3)), warmup=0)
+    return _result(cfg.ingest_rows, seconds, format=fmt)
+
+
+def _case_catalog_scan(cfg: BenchConfig) -> dict[str, object]:
+    from replay.catalog import Catalog
+    from replay.ingest import ingest
+
+    with tempfile.TemporaryDirectory(prefix="replay-bench-") as tmp:
+        folder = Path(tmp)
+        parquet_path, _, campaigns_path = _write_ingest_inputs(cfg, folder)
+        ingest([parquet_path], folder / "catalog", campaigns=campaigns_path)
+        catalog = Catalog(folder / "catalog")
+        seconds = _median_seconds(lambda: catalog.arrays("bench"), cfg.repeats)
+    return _result(cfg.ingest_rows, seconds)
+
+
+def _case_hindsight(cfg: BenchConfig) -> dict[str, object]:
+    from replay.kernels.hindsight import solve
+    from replay.scenario import synthetic_campaign
+
+    arrays = synthetic_campaign(cfg.rows, seed=cfg.seed)
+    budget = 0.3 * float(arrays.min_win_price.sum())
+    seconds = _median_seconds(
+        lambda: solve(arrays.value, arrays.min_win_price, budget), cfg.repeats
+    )
+    return _result(len(arrays), seconds)
+
+
+def _case_hindsight_curve(cfg: BenchConfig) -> dict[str, object]:
+    from replay.kernels.hindsight import budget_curve
+    from replay.scenario import synthetic_campaign
+
+    arrays = synthetic_campaign(cfg.rows, seed=cfg.seed)
+    base = 0.3 * float(arrays.min_win_price.sum())
+    budgets = base * np.geomspace(0.25, 4.0, 16)
+    seconds = _median_seconds(
+        lambda: budget_curve(arrays.value, arrays.min_win_price, budgets),
+        max(1, min(cfg.repeats, 3)),
+    )
+    return _result(len(arrays), seconds, points=16)
+
+
+def _case_rule(cfg: BenchConfig, rule: str, schedule: str) -> dict[str, object]:
+    from replay.bench_rules import prepare_rule_case
+
+    run, rows = prepare_rule_case(rule, cfg.rows, schedule, cfg.seed)
+    seconds = _median_seconds(run, cfg.repeats)
+    return _result(rows, seconds, rule=rule, schedule=schedule)
+
+
+def _case_backtest_demo(cfg: BenchConfig) -> dict[str, object]:
+    from replay.catalog import Catalog
+    from replay.engines.local import backtest
+    from replay.ingest import ingest
+    from replay.scenario import generate_scenario
+
+    campaigns, days = (4, 3) if cfg.rows < 1_000_000 else (12, 7)
+    with tempfile.TemporaryDirectory(prefix="replay-bench-") as tmp:
+        folder = Path(tmp)
+        files = generate_scenario(folder / "scenario", campaigns=campaigns, days=days,
+                                  seed=cfg.seed)
+        ingest([files.auctions], folder / "catalog", campaigns=files.campaigns)
+        catalog = Catalog(folder / "catalog")
+        rows = catalog.row_count()
+        counter = iter(range(10_000))
+
+        def run() -> None:
+            backtest(catalog, "dual-mirror", out=folder / f"run{next(counter)}", workers=1)
+
+        seconds = _median_seconds(run, max(1, min(cfg.repeats, 3)))
+    return _result(rows, seconds, campaigns=campaigns, days=days)
+
+
+CASES: dict[str, Callable[[BenchConfig], dict[str, object]]] = {
+    "reference": _case_reference,
+    "ingest_parquet": lambda cfg: _case_ingest(cfg, "parquet"),
+    "ingest_csv": lambda cfg: _case_ingest(cfg, "csv"),
+    "catalog_scan": _case_catalog_scan,
+    "hindsight": _case_hindsight,
+    "hindsight_curve": _case_hindsight_curve,
+    "backtest_demo": _case_backtest_demo,
+}
+
+
+def rule_case_names() -> list[str]:
+    """Names of the built-in rules benchmarked at both schedules."""
+    from replay.rules.registry import list_rules
+
+    return [cls.name for cls in list_rules()]
+
+
+def _run_case(name: str, cfg: BenchConfig) -> dict[str, object]:
+    # Single-threaded kernels: the targets are per core.
+    os.environ.setdefault("NUMBA_NUM_THREADS", "1")
+    if name.startswith("rule/"):
+        _, rule, schedule = name.split("/")
+        return _case_rule(cfg, rule, schedule)
+    return CASES[name](cfg)
+
+
+def _in_child(name: str, cfg: BenchConfig) -> dict[str, object]:
+    ctx = get_context("spawn")
+    with ProcessPoolExecutor(max_workers=1, mp_context=ctx) as pool:
+        return pool.submit(_run_case, name, cfg).result()
+
+
+def machine_info() -> dict[str, object]:
+    import numba
+
+    return {
+        "cpus": os.cpu_count(),
+        "platform": platform.platform(),
+        "processor": platform.machine(),
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "numba": numba.__version__,
+    }
+
+
+def run_bench(cfg: BenchConfig, progress: Callable[[str], None] | None = None,
+              only: list[str] | None = None) -> dict[str, object]:
+    """Run every case (or those in ``only``) and return the JSON-ready result."""
+    names = list(CASES)
+    for rule in rule_case_names():
+        names += [f"rule/{rule}/batch", f"rule/{rule}/per_request"]
+    if only:
+        names = [n for n in names if any(n == o or n.startswith(o) for o in only)]
+    if "reference" not in names:
+        names.insert(0, "reference")
+    results: dict[str, dict[str, object]] = {}
+    for name in names:
+        if progress:
+            progress(name)
+        try:
+            results[name] = _in_child(name, cfg)
+        except Exception as exc:  # a failing case must not hide the others
+            results[name] = {"error": f"{type(exc).__name__}: {exc}"}
+    reference_rate = results["reference"].get("rows_per_s")
+    for entry in results.values():
+        rate = entry.get("rows_per_s")
+        entry["fraction_of_reference"] = (
+            float(rate / reference_rate) if rate and reference_rate else None
+        )
+    out: dict[str, object] = {
+        "format_version": BENCH_FORMAT_VERSION,
+        "config": {"rows": cfg.rows, "ingest_rows": cfg.ingest_rows,
+                   "repeats": cfg.repeats, "seed": cfg.seed},
+        "machine": machine_info(),
+    }
+    rules: dict[str, dict[str, object]] = {}
+    for name, entry in results.items():
+        if name.startswith("rule/"):
+            _, rule, schedule = name.split("/")
+            rules.setdefault(rule, {})[schedule] = entry
+        else:
+            out[name] = entry
+    out["rules"] = rules
+    ftl = rules.get("ftl", {}).get("batch_1000_updates") or rules.get("ftl", {}).get("batch")
+    hind = out.get("hindsight")
+    if ftl and isinstance(hind, dict) and ftl.get("seconds") and hind.get("seconds"):
+        out["ftl_vs_hindsight"] = {"ratio": float(ftl["seconds"]) / float(hind["seconds"])}
+    return out
