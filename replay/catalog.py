@@ -1,0 +1,376 @@
+"""Read access to a catalog written by :func:`replay.ingest.ingest`.
+
+DuckDB views over the catalog's Parquet files: ``auctions`` (hive partitions
+``auctions/date=YYYY-MM-DD``), ``campaigns`` and ``rejected``. Each thread of each process
+opens its own DuckDB connection, so a :class:`Catalog` can be pickled into worker processes
+(only its path travels).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import os
+import threading
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+
+import duckdb
+import numpy as np
+import polars as pl
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from replay.errors import InputError, UsageError
+from replay.ingest import AUCTIONS_DIR, CAMPAIGNS_FILE, CATALOG_JSON, read_catalog_json
+from replay.schema import (
+    AUCTION_COLUMNS,
+    CAMPAIGN_SCHEMA,
+    FIRST_PRICE,
+    PARTITION_COLUMN,
+    REJECT_REASON_COLUMN,
+    REJECTED_DIR,
+    CampaignArrays,
+    CampaignSpec,
+)
+
+_EPOCH = dt.datetime(1970, 1, 1, tzinfo=dt.UTC)
+
+#: iter_arrays reads campaigns in batches of about this many rows (memory bound).
+ITER_BATCH_ROWS = 4_000_000
+
+
+def to_us(x: object) -> int | None:
+    """Microseconds since the epoch (UTC) from a datetime, date, ISO-8601 string or int.
+
+    Naive datetimes and strings without an offset are taken as UTC; an int is already
+    microseconds. None gives None.
+    """
+    if x is None:
+        return None
+    if isinstance(x, bool):
+        raise UsageError(f"not a time: {x!r}")
+    if isinstance(x, int | np.integer):
+        return int(x)
+    if isinstance(x, np.datetime64):
+        return int(x.astype("datetime64[us]").astype(np.int64))
+    if isinstance(x, str):
+        text = x.strip()
+        try:
+            value = dt.datetime.fromisoformat(text.replace(" UTC", "+00:00"))
+        except ValueError:
+            raise UsageError(f"not an ISO-8601 time: {x!r} (example 2026-03-01T00:00:00Z)")\
+                from None
+        x = value
+    if hasattr(x, "to_pydatetime"):  # pandas-like timestamps
+        x = x.to_pydatetime()
+    if isinstance(x, dt.datetime):
+        if x.tzinfo is None:
+            x = x.replace(tzinfo=dt.UTC)
+        delta = x - _EPOCH
+        return (delta.days * 86_400 + delta.seconds) * 1_000_000 + delta.microseconds
+    if isinstance(x, dt.date):
+        return to_us(dt.datetime(x.year, x.month, x.day, tzinfo=dt.UTC))
+    raise UsageError(f"not a time: {x!r} (give a datetime, a date, an ISO-8601 string or "
+                     "integer microseconds)")
+
+
+def _lit(text: str) -> str:
+    return "'" + text.replace("'", "''") + "'"
+
+
+def _np(col: pa.ChunkedArray | pa.Array, dtype: type) -> np.ndarray:
+    """numpy view of an Arrow column: zero-copy for a single null-free chunk."""
+    if isinstance(col, pa.ChunkedArray):
+        col = col.chunk(0) if col.num_chunks == 1 else col.combine_chunks()
+    if col.null_count == 0 and not pa.types.is_boolean(col.type):
+        arr = col.to_numpy(zero_copy_only=True)
+    else:
+        arr = col.to_numpy(zero_copy_only=False)
+    return arr if arr.dtype == dtype else arr.astype(dtype)
+
+
+class Catalog:
+    """A catalog folder: ``catalog.json``, ``auctions/``, ``campaigns.parquet``, ``_rejected/``."""
+
+    def __init__(self, path: str | Path) -> None:
+        self.path = Path(path)
+        if not self.path.is_dir():
+            raise InputError(f"{self.path}: no such catalog folder (create one with "
+                             "`replay ingest SRC --into CATALOG`)")
+        meta = read_catalog_json(self.path)
+        if meta is None:
+            raise InputError(f"{self.path}: not a catalog (no {CATALOG_JSON}); create one with "
+                             "`replay ingest SRC --into CATALOG`")
+        self.meta = meta
+        self._local = threading.local()
+        self._cache: dict[str, object] = {}
+
+    # -- pickling: only the path crosses process boundaries
+    def __getstate__(self) -> dict:
+        return {"path": str(self.path)}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__init__(state["path"])
+
+    def __repr__(self) -> str:
+        return f"Catalog({str(self.path)!r})"
+
+    # -- connection
+    @property
+    def con(self) -> duckdb.DuckDBPyConnection:
+        """This thread's DuckDB connection (opened on first use, one per thread and process)."""
+        pid = os.getpid()
+        con = getattr(self._local, "con", None)
+        if con is None or getattr(self._local, "pid", None) != pid:
+            con = duckdb.connect()
+            con.execute("SET TimeZone = 'UTC'")
+            self._create_views(con)
+            self._local.con, self._local.pid = con, pid
+        return con
+
+    def _create_views(self, con: duckdb.DuckDBPyConnection) -> None:
+        auctions_glob = self.path / AUCTIONS_DIR / "*" / "*.parquet"
+        if any((self.path / AUCTIONS_DIR).glob("*/*.parquet")):
+            con.execute(
+                "CREATE OR REPLACE VIEW auctions AS SELECT * FROM read_parquet("
+                f"{_lit(str(auctions_glob))}, hive_partitioning = true, "
+                f"hive_types = {{'{PARTITION_COLUMN}': DATE}})")
+        else:
+            cols = ", ".join(f"CAST(NULL AS {_duck_type(c.type)}) AS {c.name}"
+                             for c in AUCTION_COLUMNS)
+            con.execute(f"CREATE OR REPLACE VIEW auctions AS SELECT {cols}, "
+                        f"CAST(NULL AS DATE) AS {PARTITION_COLUMN} WHERE false")
+        campaigns = self.path / CAMPAIGNS_FILE
+        if campaigns.is_file():
+            con.execute("CREATE OR REPLACE VIEW campaigns AS SELECT * FROM "
+                        f"read_parquet({_lit(str(campaigns))})")
+        else:
+            cols = ", ".join(f"CAST(NULL AS {_duck_type(f.type)}) AS \"{f.name}\""
+                             for f in CAMPAIGN_SCHEMA)
+            con.execute(f"CREATE OR REPLACE VIEW campaigns AS SELECT {cols} WHERE false")
+        rejected = self.path / REJECTED_DIR
+        if any(rejected.glob("*.parquet")):
+            con.execute("CREATE OR REPLACE VIEW rejected AS SELECT * FROM read_parquet("
+                        f"{_lit(str(rejected / '*.parquet'))}, union_by_name = true)")
+        else:
+            con.execute("CREATE OR REPLACE VIEW rejected AS SELECT "
+                        f"CAST(NULL AS VARCHAR) AS {REJECT_REASON_COLUMN}, "
+                        "CAST(NULL AS VARCHAR) AS source_file, "
+                        "CAST(NULL AS BIGINT) AS source_row WHERE false")
+
+    # -- SQL
+    def sql(self, query: str) -> pl.DataFrame:
+        """Run DuckDB SQL over the views ``auctions``, ``campaigns``, ``rejected``."""
+        return pl.from_arrow(self.arrow(query))
+
+    def arrow(self, query: str) -> pa.Table:
+        """Like :meth:`sql`, as an Arrow table. Bad SQL raises UsageError (one line)."""
+        try:
+            rel = self.con.sql(query)
+            if rel is None:
+                return pa.table({})
+            return rel.to_arrow_table()
+        except duckdb.Error as exc:
+            text = str(exc).strip().splitlines()
+            raise UsageError(f"query failed: {text[0] if text else type(exc).__name__}")\
+                from None
+
+    def _where(self, campaign_id, start, end) -> tuple[str, list]:
+        conds, params = [], []
+        if campaign_id is not None:
+            ids = [campaign_id] if isinstance(campaign_id, str) else list(campaign_id)
+            conds.append("campaign_id IN (SELECT unnest(?))")
+            params.append(ids)
+        s, e = to_us(start), to_us(end)
+        if s is not None:
+            conds.append("ts >= make_timestamptz(?)")
+            params.append(s)
+            # Partition pruning on the hive date column.
+            conds.append(f"{PARTITION_COLUMN} >= CAST(make_timestamptz(?) AS DATE)")
+            params.append(s)
+        if e is not None:
+            conds.append("ts < make_timestamptz(?)")
+            params.append(e)
+            conds.append(f"{PARTITION_COLUMN} <= CAST(make_timestamptz(?) AS DATE)")
+            params.append(e)
+        return (" WHERE " + " AND ".join(conds)) if conds else "", params
+
+    def auctions(self, campaign_id: str | Sequence[str] | None = None, start=None, end=None,
+                 columns: Sequence[str] | None = None,
+                 as_arrow: bool = False) -> pl.DataFrame | pa.Table:
+        """Accepted auction rows (``start <= ts < end``), sorted by campaign_id then ts.
+
+        ``start``/``end``: datetime, date, ISO-8601 string or int microseconds (UTC).
+        """
+        names = [c.name for c in AUCTION_COLUMNS]
+        cols = list(columns) if columns is not None else names
+        unknown = [c for c in cols if c not in names and c != PARTITION_COLUMN]
+        if unknown:
+            raise UsageError(f"unknown auction column {unknown[0]!r}; columns are "
+                             f"{', '.join(names)}")
+        where, params = self._where(campaign_id, start, end)
+        select = ", ".join(f'"{c}"' for c in cols)
+        table = self.con.sql(
+            f"SELECT {select} FROM auctions{where} ORDER BY campaign_id, ts", params=params
+        ).to_arrow_table()
+        return table if as_arrow else pl.from_arrow(table)
+
+    # -- catalog facts (cached per instance)
+    def campaign_ids(self) -> list[str]:
+        """Campaign ids present in the accepted log, sorted."""
+        if "campaign_ids" not in self._cache:
+            rows = self.con.execute(
+                "SELECT DISTINCT campaign_id FROM auctions ORDER BY 1").fetchall()
+            self._cache["campaign_ids"] = [r[0] for r in rows]
+        return list(self._cache["campaign_ids"])
+
+    def campaign_row_counts(self) -> dict[str, int]:
+        """Accepted rows per campaign."""
+        if "campaign_rows" not in self._cache:
+            rows = self.con.execute(
+                "SELECT campaign_id, count(*) FROM auctions GROUP BY 1 ORDER BY 1").fetchall()
+            self._cache["campaign_rows"] = dict(rows)
+        return dict(self._cache["campaign_rows"])
+
+    def placements(self) -> list[tuple[str, str]]:
+        """Catalog-wide sorted (placement, pricing) pairs; placement codes index this list."""
+        if "placements" not in self._cache:
+            rows = self.con.execute(
+                "SELECT DISTINCT placement, pricing FROM auctions ORDER BY 1, 2").fetchall()
+            self._cache["placements"] = [(r[0], r[1]) for r in rows]
+        return list(self._cache["placements"])
+
+    def campaigns(self) -> dict[str, CampaignSpec]:
+        """The campaign table: campaign_id -> :class:`CampaignSpec` (budget in currency)."""
+        path = self.path / CAMPAIGNS_FILE
+        if not path.is_file():
+            return {}
+        table = pq.read_table(path)
+        out: dict[str, CampaignSpec] = {}
+        cols = {n: table.column(n) for n in table.column_names}
+        start = cols["start"].cast(pa.int64()).to_pylist()
+        end = cols["end"].cast(pa.int64()).to_pylist()
+        for i, cid in enumerate(cols["campaign_id"].to_pylist()):
+            out[cid] = CampaignSpec(
+                campaign_id=cid, budget=float(cols["budget"][i].as_py()),
+                start_us=start[i], end_us=end[i],
+                max_cost_per_result=cols["max_cost_per_result"][i].as_py(),
+                group_id=cols["group_id"][i].as_py(),
+            )
+        return out
+
+    def time_span_us(self) -> tuple[int, int]:
+        """(min ts, max ts) of the accepted log, microseconds since the epoch UTC."""
+        lo, hi = self.con.execute(
+            "SELECT epoch_us(min(ts)), epoch_us(max(ts)) FROM auctions").fetchall()[0]
+        if lo is None:
+            raise InputError(f"{self.path}: the catalog has no accepted auction rows")
+        return int(lo), int(hi)
+
+    def row_count(self) -> int:
+        """Accepted auction rows."""
+        return int(self.con.execute("SELECT count(*) FROM auctions").fetchall()[0][0])
+
+    def fingerprint(self) -> str:
+        """Stable hash of the catalog's contents: data file names and sizes, the recorded
+        source hashes and the campaign table bytes."""
+        h = hashlib.sha256()
+        for sub in (AUCTIONS_DIR, REJECTED_DIR):
+            for f in sorted((self.path / sub).rglob("*.parquet")):
+                h.update(f"{f.relative_to(self.path).as_posix()}:{f.stat().st_size}\n".encode())
+        for s in sorted(x["sha256"] for x in self.meta.get("sources", [])):
+            h.update(s.encode())
+        campaigns = self.path / CAMPAIGNS_FILE
+        if campaigns.is_file():
+            h.update(hashlib.sha256(campaigns.read_bytes()).digest())
+        return h.hexdigest()[:16]
+
+    # -- kernel inputs
+    def _placement_table(self) -> None:
+        if getattr(self._local, "placements_registered", None) == os.getpid():
+            return
+        pl_list = self.placements()
+        self.con.register("__placement_codes", pa.table({
+            "placement": [p for p, _ in pl_list], "pricing": [q for _, q in pl_list],
+            "code": pa.array(range(len(pl_list)), pa.int32())}))
+        self._local.placements_registered = os.getpid()
+
+    def _arrays_query(self, ids: list[str], start_us, end_us) -> pa.Table:
+        self._placement_table()
+        where, params = self._where(ids, start_us, end_us)
+        return self.con.sql(
+            "SELECT campaign_id, epoch_us(ts) AS ts_us, value, min_win_price, charge_prob, "
+            f"code AS placement_code, pricing = '{FIRST_PRICE}' AS first_price, request_id "
+            f"FROM auctions JOIN __placement_codes USING (placement, pricing){where} "
+            "ORDER BY campaign_id, ts", params=params).to_arrow_table()
+
+    def _to_arrays(self, campaign_id: str, t: pa.Table) -> CampaignArrays:
+        names = tuple(p for p, _ in self.placements())
+        rid = t.column("request_id")
+        return CampaignArrays(
+            campaign_id=campaign_id,
+            ts_us=_np(t.column("ts_us"), np.int64),
+            value=_np(t.column("value"), np.float64),
+            min_win_price=_np(t.column("min_win_price"), np.float64),
+            charge_prob=_np(t.column("charge_prob"), np.float64),
+            placement_code=_np(t.column("placement_code"), np.int32),
+            first_price=_np(t.column("first_price"), np.bool_),
+            placements=names,
+            request_id=None if rid.null_count == len(rid) else
+            np.asarray(rid.to_pylist(), dtype=object),
+        )
+
+    def arrays(self, campaign_id: str, start_us: int | None = None,
+               end_us: int | None = None) -> CampaignArrays:
+        """One campaign's accepted rows as numpy arrays sorted by ts (``start <= ts < end``).
+
+        ``placement_code`` indexes :meth:`placements` (catalog-wide); ``placements`` of the
+        result holds the placement names in that order. An unknown campaign gives no rows.
+        """
+        t = self._arrays_query([campaign_id], start_us, end_us)
+        return self._to_arrays(campaign_id, t)
+
+    def iter_arrays(self, campaign_ids: Sequence[str], start_us=None,
+                    end_us=None) -> Iterator[CampaignArrays]:
+        """:meth:`arrays` for many campaigns, in the given order, reading them in batches."""
+        ids = list(campaign_ids)
+        counts = self.campaign_row_counts()
+        i = 0
+        while i < len(ids):
+            batch, rows = [], 0
+            while i < len(ids) and (not batch or rows + counts.get(ids[i], 0) <= ITER_BATCH_ROWS):
+                batch.append(ids[i])
+                rows += counts.get(ids[i], 0)
+                i += 1
+            t = self._arrays_query(batch, start_us, end_us)
+            # Rows come sorted by campaign_id: find each campaign's run.
+            runs: dict[str, tuple[int, int]] = {}
+            if t.num_rows:
+                ree = pc.run_end_encode(t.column("campaign_id").combine_chunks())
+                ends = ree.run_ends.to_pylist()
+                starts = [0] + ends[:-1]
+                runs = dict(zip(ree.values.to_pylist(), zip(starts, ends, strict=True),
+                                strict=True))
+            for cid in batch:
+                lo, hi = runs.get(cid, (0, 0))
+                yield self._to_arrays(cid, t.slice(lo, hi - lo))
+
+    def close(self) -> None:
+        """Close this thread's connection (others close when their thread or process ends)."""
+        con = getattr(self._local, "con", None)
+        if con is not None:
+            con.close()
+            self._local.con = None
+
+
+def _duck_type(t: pa.DataType) -> str:
+    if pa.types.is_timestamp(t):
+        return "TIMESTAMPTZ"
+    if pa.types.is_floating(t):
+        return "DOUBLE"
+    return "VARCHAR"
+
+
+__all__ = ["Catalog", "to_us"]

@@ -1,0 +1,907 @@
+"""Validated ingestion of auction logs into a catalog (DuckDB over hive-partitioned Parquet).
+
+Every input row ends up in exactly one place: accepted rows go to
+``CATALOG/auctions/date=YYYY-MM-DD/*.parquet`` with the schema of
+:data:`replay.schema.AUCTION_SCHEMA`; rejected rows go, with their original values as
+strings plus ``reject_reason``, ``source_file`` and ``source_row`` (1-based data row), to
+``CATALOG/_rejected/*.parquet``. Rows read = accepted + rejected, always.
+
+Work is streamed through DuckDB (the inputs are never loaded whole into memory) into a
+temporary folder inside CATALOG; files are moved into place and ``catalog.json`` is replaced
+only when everything succeeded, so a failure leaves the catalog as it was (or absent).
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as dt
+import glob
+import gzip
+import hashlib
+import json
+import math
+import os
+import shutil
+import time
+import uuid
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import duckdb
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from replay.errors import InputError
+from replay.schema import (
+    AUCTION_COLUMNS,
+    CAMPAIGN_SCHEMA,
+    FIRST_PRICE,
+    PARTITION_COLUMN,
+    PRICING_RULES,
+    REJECT_REASON_COLUMN,
+    REJECTED_DIR,
+    REQUIRED_AUCTION_COLUMNS,
+    REQUIRED_CAMPAIGN_COLUMNS,
+    SECOND_PRICE,
+    RejectReason,
+)
+
+CATALOG_FORMAT = "auction-replay-catalog"
+CATALOG_FORMAT_VERSION = 1
+CATALOG_JSON = "catalog.json"
+AUCTIONS_DIR = "auctions"
+CAMPAIGNS_FILE = "campaigns.parquet"
+
+#: File name endings recognised inside folders, and the reader used for each.
+SUFFIX_FORMATS: tuple[tuple[str, str], ...] = (
+    (".parquet", "parquet"), (".pq", "parquet"),
+    (".csv", "csv"), (".csv.gz", "csv"),
+    (".arrow", "arrow"), (".feather", "arrow"), (".ipc", "arrow"), (".arrows", "arrow"),
+)
+
+#: Inputs above this many bytes show a progress bar (when ``progress=True``).
+PROGRESS_MIN_BYTES = 32 * 1024 * 1024
+
+_OPTIONAL_DEFAULTS = {c.name: c.default for c in AUCTION_COLUMNS if not c.required}
+
+
+@dataclass
+class IngestReport:
+    """What one ``ingest`` call did. Counts are rows of the auction log."""
+
+    catalog: Path
+    rows_read: int = 0
+    accepted: int = 0
+    rejected: dict[str, int] = field(default_factory=dict)  # reason -> rows, nonzero only
+    campaigns: int = 0  # distinct campaigns among the accepted rows of this call
+    campaign_ids: list[str] = field(default_factory=list)
+    first_ts: dt.datetime | None = None  # accepted rows of this call, UTC
+    last_ts: dt.datetime | None = None
+    files: list[dict[str, object]] = field(default_factory=list)  # path, format, sha256, status
+    skipped: list[str] = field(default_factory=list)  # files already in the catalog
+    campaigns_without_table_row: list[str] = field(default_factory=list)  # whole catalog
+    table_campaigns_without_rows: list[str] = field(default_factory=list)  # whole catalog
+    campaign_table_rows: int = 0  # rows of the campaign table given to this call
+    warnings: list[str] = field(default_factory=list)
+    seconds: float = 0.0
+
+    @property
+    def rejected_total(self) -> int:
+        return sum(self.rejected.values())
+
+
+# --------------------------------------------------------------------------- sources
+
+def detect_format(path: Path) -> str | None:
+    """``parquet``, ``csv`` or ``arrow`` from the file name ending, else None."""
+    name = path.name.lower()
+    for suffix, fmt in sorted(SUFFIX_FORMATS, key=lambda s: -len(s[0])):
+        if name.endswith(suffix):
+            return fmt
+    return None
+
+
+def resolve_sources(sources: Sequence[str | Path]) -> list[Path]:
+    """Expand files, globs and folders (recursively) into a sorted, de-duplicated list."""
+    if isinstance(sources, str | Path):
+        sources = [sources]
+    out: list[Path] = []
+    for src in sources:
+        text = str(src)
+        if any(ch in text for ch in "*?["):
+            matches = [Path(m) for m in sorted(glob.glob(text, recursive=True))]
+            files = [m for m in matches if m.is_file()]
+            if not files:
+                raise InputError(f"{text}: the pattern matches no file")
+            out.extend(files)
+            continue
+        path = Path(src)
+        if path.is_dir():
+            files = sorted(
+                p for p in path.rglob("*")
+                if p.is_file() and detect_format(p) is not None
+                and not any(part.startswith((".", "_")) for part in p.relative_to(path).parts)
+            )
+            if not files:
+                raise InputError(f"{path}: the folder holds no .parquet, .csv or .arrow file")
+            out.extend(files)
+        elif path.is_file():
+            out.append(path)
+        else:
+            raise InputError(f"{path}: no such file or folder")
+    seen: set[Path] = set()
+    unique = []
+    for p in out:
+        rp = p.resolve()
+        if rp not in seen:
+            seen.add(rp)
+            unique.append(rp)
+    return unique
+
+
+def file_sha256(path: Path) -> str:
+    """Content hash of a file (hex), read in chunks."""
+    with open(path, "rb") as fh:
+        return hashlib.file_digest(fh, "sha256").hexdigest()
+
+
+def _csv_header(path: Path) -> list[str]:
+    opener = gzip.open if path.name.lower().endswith(".gz") else open
+    try:
+        with opener(path, "rt", newline="", encoding="utf-8-sig") as fh:
+            header = next(csv.reader(fh), None)
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise InputError(f"{path}: cannot read as CSV ({exc})") from None
+    if not header or all(not h.strip() for h in header):
+        raise InputError(f"{path}: no header line (an empty file has no input rows)")
+    return [h.strip() for h in header]
+
+
+def _open_ipc(path: Path) -> pa.RecordBatchReader | pa.ipc.RecordBatchFileReader:
+    source = pa.memory_map(str(path), "r")
+    try:
+        return pa.ipc.open_file(source)
+    except pa.ArrowInvalid:
+        return pa.ipc.open_stream(pa.memory_map(str(path), "r"))
+
+
+def inspect_source(path: Path, fmt: str | None = None) -> tuple[str, list[str]]:
+    """(format, column names) of one input; InputError if it cannot be read."""
+    fmt = fmt or detect_format(path)
+    if fmt is None:
+        # Unknown ending: try Parquet, then Arrow IPC, then CSV.
+        for guess in ("parquet", "arrow"):
+            try:
+                return inspect_source(path, guess)
+            except InputError:
+                pass
+        fmt = "csv"
+    try:
+        if fmt == "parquet":
+            names = pq.read_schema(path).names
+        elif fmt == "arrow":
+            names = _open_ipc(path).schema.names
+        else:
+            names = _csv_header(path)
+    except InputError:
+        raise
+    except (OSError, pa.ArrowException) as exc:
+        raise InputError(f"{path}: cannot read as {fmt} ({_first_line(exc)})") from None
+    return fmt, names
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip()
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
+def _check_required(path: Path, names: Sequence[str], required: Sequence[str], what: str) -> None:
+    have = set(names)
+    missing = [c for c in required if c not in have]
+    if missing:
+        raise InputError(
+            f"{path}: missing required column {missing[0]!r}"
+            + (f" (also {', '.join(repr(m) for m in missing[1:])})" if missing[1:] else "")
+            + f"; {what} needs {', '.join(required)} (found: {', '.join(names) or 'none'})"
+        )
+
+
+# --------------------------------------------------------------------------- staging
+
+def _stage_csv(path: Path, names: list[str], out: Path) -> None:
+    """CSV -> Parquet with every column as string, streamed, row order kept."""
+    opts_read = pacsv.ReadOptions(column_names=names, skip_rows=1, block_size=16 << 20)
+    opts_conv = pacsv.ConvertOptions(column_types={n: pa.string() for n in names},
+                                     strings_can_be_null=False, quoted_strings_can_be_null=False)
+    try:
+        stream = pa.input_stream(str(path), compression="detect")
+        reader = pacsv.open_csv(stream, read_options=opts_read, convert_options=opts_conv)
+        with pq.ParquetWriter(out, reader.schema, compression="snappy") as writer:
+            for batch in reader:
+                writer.write_batch(batch)
+    except pa.ArrowException as exc:
+        raise InputError(f"{path}: cannot read as CSV ({_first_line(exc)})") from None
+
+
+def _stage_arrow(path: Path, out: Path) -> None:
+    """Arrow IPC (file or stream) -> Parquet, batch by batch."""
+    try:
+        reader = _open_ipc(path)
+        with pq.ParquetWriter(out, reader.schema, compression="snappy") as writer:
+            if isinstance(reader, pa.ipc.RecordBatchFileReader):
+                for i in range(reader.num_record_batches):
+                    writer.write_batch(reader.get_batch(i))
+            else:
+                for batch in reader:
+                    writer.write_batch(batch)
+    except pa.ArrowException as exc:
+        raise InputError(f"{path}: cannot read as Arrow IPC ({_first_line(exc)})") from None
+
+
+# --------------------------------------------------------------------------- SQL
+
+def _q(name: str) -> str:
+    return '"' + name.replace('"', '""') + '"'
+
+
+def _lit(text: str) -> str:
+    return "'" + text.replace("'", "''") + "'"
+
+
+def _kind(t: pa.DataType) -> str:
+    if pa.types.is_dictionary(t):
+        t = t.value_type
+    if pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_string_view(t):
+        return "string"
+    if pa.types.is_timestamp(t) or pa.types.is_date(t):
+        return "timestamp"
+    if pa.types.is_integer(t):
+        return "integer"
+    if pa.types.is_floating(t) or pa.types.is_decimal(t):
+        return "float"
+    if pa.types.is_boolean(t):
+        return "bool"
+    return "other"
+
+
+def _typed_exprs(path: Path, schema: pa.Schema) -> dict[str, str]:
+    """SQL expressions giving typed values and 'raw missing' flags for one input schema."""
+    types = {f.name: f.type for f in schema}
+    ex: dict[str, str] = {}
+
+    def bad_type(col: str, expected: str) -> InputError:
+        return InputError(f"{path}: column {col!r} has type {types[col]}; expected {expected}")
+
+    # ts: timestamps as they are (naive = UTC), ISO-8601 strings parsed, integers as
+    # microseconds since the epoch.
+    k = _kind(types["ts"])
+    if k == "timestamp":
+        ex["ts"] = 'CAST("ts" AS TIMESTAMPTZ)'
+        ex["ts_missing"] = '"ts" IS NULL'
+    elif k == "string":
+        ex["ts"] = "TRY_CAST(NULLIF(trim(\"ts\"), '') AS TIMESTAMPTZ)"
+        ex["ts_missing"] = "NULLIF(trim(\"ts\"), '') IS NULL"
+    elif k == "integer":
+        ex["ts"] = 'CAST(make_timestamp(CAST("ts" AS BIGINT)) AS TIMESTAMPTZ)'
+        ex["ts_missing"] = '"ts" IS NULL'
+    else:
+        raise bad_type("ts", "a timestamp, an ISO-8601 string or integer microseconds")
+
+    for col in ("campaign_id", "placement", "pricing", "request_id"):
+        if col not in types:
+            ex[col] = "CAST(NULL AS VARCHAR)"
+            continue
+        k = _kind(types[col])
+        if k in ("string", "integer"):
+            ex[col] = f"CAST({_q(col)} AS VARCHAR)"
+        else:
+            raise bad_type(col, "a string")
+    ex["request_id"] = f"NULLIF({ex['request_id']}, '')"
+
+    for col in ("value", "min_win_price", "charge_prob"):
+        if col not in types:
+            ex[col] = "CAST(NULL AS DOUBLE)"
+            ex[col + "_missing"] = "TRUE"
+            continue
+        k = _kind(types[col])
+        if k in ("float", "integer"):
+            ex[col] = f"CAST({_q(col)} AS DOUBLE)"
+            ex[col + "_missing"] = f"{_q(col)} IS NULL"
+        elif k == "string":
+            s = f"NULLIF(trim({_q(col)}), '')"
+            ex[col] = f"TRY_CAST({s} AS DOUBLE)"
+            ex[col + "_missing"] = f"{s} IS NULL"
+        else:
+            raise bad_type(col, "a number")
+    return ex
+
+
+def _reason_case(ex: dict[str, str]) -> str:
+    """The first failing check, in the order of :class:`RejectReason`; NULL when the row is good.
+
+    Values that are present but not numbers count as missing (``missing_value``).
+    """
+    R = RejectReason
+    pricing_list = ", ".join(_lit(p) for p in PRICING_RULES)
+    cp, cp_missing = ex["charge_prob"], ex["charge_prob_missing"]
+    whens = [
+        (ex["ts_missing"], R.MISSING_TS),
+        (f"({ex['ts']}) IS NULL", R.UNPARSEABLE_TS),
+        (f"coalesce(trim({ex['campaign_id']}), '') = ''", R.EMPTY_CAMPAIGN_ID),
+        (f"coalesce(trim({ex['placement']}), '') = ''", R.MISSING_PLACEMENT),
+        (f"coalesce({ex['pricing']}, '') NOT IN ({pricing_list})", R.UNKNOWN_PRICING),
+    ]
+    for col, miss, nan, inf, neg in (
+        ("value", R.MISSING_VALUE, R.NAN_VALUE, R.INFINITE_VALUE, R.NEGATIVE_VALUE),
+        ("min_win_price", R.MISSING_MIN_WIN_PRICE, R.NAN_MIN_WIN_PRICE,
+         R.INFINITE_MIN_WIN_PRICE, R.NEGATIVE_MIN_WIN_PRICE),
+    ):
+        e = ex[col]
+        whens += [(f"({e}) IS NULL", miss), (f"isnan({e})", nan), (f"isinf({e})", inf),
+                  (f"({e}) < 0", neg)]
+    # charge_prob: absent or empty means the default 1; present but not a number, NaN,
+    # <= 0 or > 1 is out of range. (DuckDB orders NaN above every number.)
+    whens.append((f"NOT ({cp_missing}) AND coalesce(NOT (({cp}) > 0 AND ({cp}) <= 1), TRUE)",
+                  R.CHARGE_PROB_OUT_OF_RANGE))
+    body = " ".join(f"WHEN {cond} THEN {_lit(str(reason))}" for cond, reason in whens)
+    return f"CASE {body} ELSE NULL END"
+
+
+@dataclass
+class _Group:
+    """Input files that share one Parquet schema (scanned by one ``read_parquet``)."""
+
+    scan_paths: list[str]
+    schema: pa.Schema
+    origin: Path  # a file of the group, for error messages
+
+
+def _group_view_sql(g: _Group) -> tuple[str, str]:
+    """(validated typed select, rejected raw select) for one group."""
+    ex = _typed_exprs(g.origin, g.schema)
+    files = "[" + ", ".join(_lit(p) for p in g.scan_paths) + "]"
+    scan = f"read_parquet({files}, filename='__file', file_row_number=true)"
+    charge = f"coalesce({ex['charge_prob']}, {float(_OPTIONAL_DEFAULTS['charge_prob'])!r})"
+    base = (
+        f"SELECT *, {_reason_case(ex)} AS __reason, ({ex['ts']}) AS __ts, "
+        f"({ex['campaign_id']}) AS __campaign_id, ({ex['placement']}) AS __placement, "
+        f"({ex['pricing']}) AS __pricing, ({ex['value']}) AS __value, "
+        f"({ex['min_win_price']}) AS __min_win_price, ({ex['request_id']}) AS __request_id, "
+        f"{charge} AS __charge_prob FROM {scan}"
+    )
+    typed = (
+        "SELECT __ts AS ts, __campaign_id AS campaign_id, __placement AS placement, "
+        "__pricing AS pricing, __value AS value, __min_win_price AS min_win_price, "
+        "__request_id AS request_id, __charge_prob AS charge_prob, __reason AS reason, "
+        f"__file, file_row_number FROM ({base})"
+    )
+    raw_cols = ", ".join(f"CAST({_q(n)} AS VARCHAR) AS {_q(n)}" for n in g.schema.names)
+    raw = (f"SELECT {raw_cols}, __reason AS reason, __file, file_row_number "
+           f"FROM ({base})")
+    return typed, raw
+
+
+# --------------------------------------------------------------------------- campaigns
+
+def _parse_number(x: object) -> float | None:
+    if x is None:
+        return None
+    if isinstance(x, bool):
+        raise ValueError("a boolean")
+    if isinstance(x, int | float):
+        return float(x)
+    text = str(x).strip()
+    if not text:
+        return None
+    return float(text)
+
+
+def _parse_time(x: object) -> int | None:
+    from replay.catalog import to_us
+
+    if x is None or (isinstance(x, str) and not x.strip()):
+        return None
+    if isinstance(x, int | float) and not isinstance(x, bool):
+        raise ValueError("a number; give an ISO-8601 time")
+    return to_us(x.strip() if isinstance(x, str) else x)
+
+
+def read_campaign_table(path: str | Path) -> pa.Table:
+    """Read and validate a campaign table (CSV, Parquet or Arrow IPC).
+
+    Errors (raise :class:`InputError`, nothing is written): unreadable file, missing
+    required column, no rows, empty campaign_id, duplicate campaign_id, budget missing /
+    not a number / <= 0, max_cost_per_result not a number or <= 0, start or end not a time,
+    end <= start. Returns a table with :data:`replay.schema.CAMPAIGN_SCHEMA`.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: campaign table not found")
+    fmt, names = inspect_source(path)
+    _check_required(path, names, REQUIRED_CAMPAIGN_COLUMNS, "the campaign table")
+    try:
+        if fmt == "parquet":
+            table = pq.read_table(path)
+        elif fmt == "arrow":
+            table = _open_ipc(path).read_all()
+        else:
+            table = pacsv.read_csv(
+                pa.input_stream(str(path), compression="detect"),
+                read_options=pacsv.ReadOptions(column_names=names, skip_rows=1),
+                convert_options=pacsv.ConvertOptions(
+                    column_types={n: pa.string() for n in names}, strings_can_be_null=False),
+            )
+    except pa.ArrowException as exc:
+        raise InputError(f"{path}: cannot read the campaign table ({_first_line(exc)})") from None
+    if table.num_rows == 0:
+        raise InputError(f"{path}: the campaign table has no rows")
+    cols = {n: table.column(n).to_pylist() for n in table.column_names}
+    n = table.num_rows
+    problems: list[str] = []
+    out: dict[str, list] = {f.name: [] for f in CAMPAIGN_SCHEMA}
+    first_row: dict[str, int] = {}
+
+    def get(name: str, i: int) -> object:
+        return cols[name][i] if name in cols else None
+
+    for i in range(n):
+        row = i + 1
+        cid_raw = get("campaign_id", i)
+        cid = None if cid_raw is None else str(cid_raw)
+        if cid is None or not cid.strip():
+            problems.append(f"row {row}: empty campaign_id")
+            continue
+        where = f"row {row} (campaign {cid!r})"
+        if cid in first_row:
+            problems.append(f"{where}: duplicate campaign_id (first at row {first_row[cid]})")
+            continue
+        first_row[cid] = row
+        raw_budget = get("budget", i)
+        try:
+            budget = _parse_number(raw_budget)
+        except ValueError:
+            budget = math.nan
+        if budget is None or not math.isfinite(budget) or budget <= 0:
+            problems.append(f"{where}: budget must be a finite number > 0 (currency over the "
+                            f"flight), got {raw_budget!r}")
+            continue
+        raw_cap = get("max_cost_per_result", i)
+        try:
+            cap = _parse_number(raw_cap)
+        except ValueError:
+            cap = math.nan
+        if cap is not None and (not math.isfinite(cap) or cap <= 0):
+            problems.append(f"{where}: max_cost_per_result must be empty or a number > 0 "
+                            f"(currency per result), got {raw_cap!r}")
+            continue
+        times = {}
+        for tcol in ("start", "end"):
+            try:
+                times[tcol] = _parse_time(get(tcol, i))
+            except Exception:  # noqa: BLE001 - any parse failure is the user's bad value
+                problems.append(f"{where}: {tcol} is not an ISO-8601 time: {get(tcol, i)!r}")
+                times[tcol] = "bad"
+        if "bad" in times.values():
+            continue
+        if times["start"] is not None and times["end"] is not None \
+                and times["end"] <= times["start"]:
+            problems.append(f"{where}: end must be after start")
+            continue
+        group = get("group_id", i)
+        group = None if group is None or not str(group).strip() else str(group)
+        out["campaign_id"].append(cid)
+        out["budget"].append(budget)
+        out["start"].append(times["start"])
+        out["end"].append(times["end"])
+        out["max_cost_per_result"].append(cap)
+        out["group_id"].append(group)
+    if problems:
+        more = f" (and {len(problems) - 1} more problems)" if len(problems) > 1 else ""
+        raise InputError(f"{path}: {problems[0]}{more}")
+    arrays = [pa.array(out[f.name], type=pa.int64() if f.name in ("start", "end") else f.type)
+              for f in CAMPAIGN_SCHEMA]
+    arrays = [a.cast(f.type) for a, f in zip(arrays, CAMPAIGN_SCHEMA, strict=True)]
+    return pa.Table.from_arrays(arrays, schema=CAMPAIGN_SCHEMA)
+
+
+def _merge_campaigns(old: pa.Table | None, new: pa.Table) -> pa.Table:
+    """Rows of ``new`` replace rows of ``old`` with the same campaign_id (upsert), sorted."""
+    if old is None or old.num_rows == 0:
+        merged = new
+    else:
+        keep = set(new.column("campaign_id").to_pylist())
+        mask = pa.array([c not in keep for c in old.column("campaign_id").to_pylist()])
+        merged = pa.concat_tables([old.filter(mask).cast(CAMPAIGN_SCHEMA), new])
+    return merged.sort_by("campaign_id")
+
+
+# --------------------------------------------------------------------------- catalog json
+
+def read_catalog_json(catalog: Path) -> dict | None:
+    path = catalog / CATALOG_JSON
+    if not path.is_file():
+        return None
+    try:
+        meta = json.loads(path.read_text())
+    except (OSError, json.JSONDecodeError) as exc:
+        raise InputError(f"{path}: unreadable catalog metadata ({exc})") from None
+    if meta.get("format") != CATALOG_FORMAT:
+        raise InputError(f"{path}: not a catalog file (format {meta.get('format')!r})")
+    if meta.get("format_version") != CATALOG_FORMAT_VERSION:
+        raise InputError(f"{path}: catalog format_version {meta.get('format_version')!r}; "
+                         f"this version reads {CATALOG_FORMAT_VERSION}")
+    return meta
+
+
+def _write_json_atomic(path: Path, data: dict) -> None:
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_text(json.dumps(data, indent=2, sort_keys=False, default=str) + "\n")
+    os.replace(tmp, path)
+
+
+# --------------------------------------------------------------------------- progress
+
+@contextmanager
+def _steps(enabled: bool, total: int) -> Iterator:
+    """A rich progress bar over ingest steps (no-op when disabled)."""
+    if not enabled:
+        yield lambda label: None
+        return
+    from rich.console import Console
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+    progress = Progress(TextColumn("ingest {task.description:<28}"), BarColumn(),
+                        TextColumn("{task.completed}/{task.total}"), TimeElapsedColumn(),
+                        console=Console(stderr=True), transient=True)
+    with progress:
+        task = progress.add_task("starting", total=total)
+        first = [True]
+
+        def step(label: str) -> None:
+            if not first[0]:
+                progress.advance(task)
+            first[0] = False
+            progress.update(task, description=label)
+
+        yield step
+        progress.update(task, completed=total)
+
+
+# --------------------------------------------------------------------------- ingest
+
+def _connect(tmp: Path) -> duckdb.DuckDBPyConnection:
+    con = duckdb.connect()
+    con.execute("SET TimeZone = 'UTC'")
+    con.execute("SET enable_progress_bar = false")
+    con.execute(f"SET temp_directory = {_lit(str(tmp / 'duckdb_tmp'))}")
+    # DuckDB folds isnan() to false from Parquet min/max statistics, which never count
+    # NaN; without this NaN values would pass the checks.
+    con.execute("SET disabled_optimizers = 'statistics_propagation'")
+    return con
+
+
+def ingest(sources: Sequence[str | Path], into: str | Path,
+           campaigns: str | Path | None = None, progress: bool = False) -> IngestReport:
+    """Validate auction-log files and add them to the catalog at ``into``.
+
+    ``sources``: files, globs or folders of Parquet, CSV (header line) or Arrow IPC.
+    ``campaigns``: optional campaign table; its rows replace rows of the same campaign_id.
+    A file whose content hash is already recorded in the catalog is skipped. Raises
+    :class:`InputError` (and writes nothing) on a missing required column, an unreadable
+    file, a file with no rows or a bad campaign table.
+    """
+    started = time.perf_counter()
+    catalog = Path(into)
+    report = IngestReport(catalog=catalog)
+    if catalog.exists() and not catalog.is_dir():
+        raise InputError(f"{catalog}: exists and is not a folder")
+    meta = read_catalog_json(catalog) if catalog.is_dir() else None
+    if meta is None and catalog.is_dir() and any(catalog.iterdir()):
+        raise InputError(f"{catalog}: folder exists, is not empty and is not a catalog "
+                         f"(no {CATALOG_JSON}); choose a new or empty folder")
+    known = {s["sha256"]: s for s in (meta or {}).get("sources", [])}
+
+    files = resolve_sources(sources)
+    new: list[tuple[Path, str, list[str], str]] = []  # path, format, names, sha
+    seen_hash: set[str] = set()
+    for path in files:
+        fmt, names = inspect_source(path)
+        sha = file_sha256(path)
+        if sha in known or sha in seen_hash:
+            report.skipped.append(str(path))
+            report.files.append({"path": str(path), "format": fmt, "sha256": sha,
+                                 "status": "skipped", "rows_read": 0})
+            continue
+        seen_hash.add(sha)
+        _check_required(path, names, REQUIRED_AUCTION_COLUMNS, "the auction log")
+        new.append((path, fmt, names, sha))
+
+    table = read_campaign_table(campaigns) if campaigns is not None else None
+    if table is not None:
+        report.campaign_table_rows = table.num_rows
+
+    created = not catalog.exists()
+    catalog.mkdir(parents=True, exist_ok=True)
+    ingest_id = dt.datetime.now(dt.UTC).strftime("%Y%m%dT%H%M%S") + "-" + uuid.uuid4().hex[:8]
+    tmp = catalog / f"_tmp-{ingest_id}"
+    tmp.mkdir()
+    try:
+        total_bytes = sum(p.stat().st_size for p, *_ in new)
+        with _steps(progress and total_bytes >= PROGRESS_MIN_BYTES, 6) as step:
+            stats = _ingest_files(new, catalog, tmp, ingest_id, step) if new else None
+            step("campaign table")
+            meta = _commit(catalog, tmp, meta, new, stats, table, ingest_id, report)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        if created:
+            shutil.rmtree(catalog, ignore_errors=True)
+        raise
+    shutil.rmtree(tmp, ignore_errors=True)
+    report.seconds = time.perf_counter() - started
+    return report
+
+
+def _ingest_files(new: list[tuple[Path, str, list[str], str]], catalog: Path, tmp: Path,
+                  ingest_id: str, step) -> dict:
+    """Stage, validate, de-duplicate and write one batch of new files into ``tmp``."""
+    staged = tmp / "staged"
+    staged.mkdir()
+    scan_of: dict[str, Path] = {}  # scanned parquet path -> original path
+    order: list[str] = []
+    step("reading inputs")
+    for i, (path, fmt, names, _sha) in enumerate(new):
+        if fmt == "parquet":
+            scan = path
+        else:
+            scan = staged / f"{i:06d}.parquet"
+            if fmt == "csv":
+                _stage_csv(path, names, scan)
+            else:
+                _stage_arrow(path, scan)
+        scan_of[str(scan)] = path
+        order.append(str(scan))
+
+    groups: dict[tuple, _Group] = {}
+    for scan in order:
+        try:
+            schema = pq.read_schema(scan)
+        except (OSError, pa.ArrowException) as exc:
+            raise InputError(f"{scan_of[scan]}: cannot read ({_first_line(exc)})") from None
+        key = tuple((f.name, str(f.type)) for f in schema)
+        groups.setdefault(key, _Group([], schema, scan_of[scan])).scan_paths.append(scan)
+
+    con = _connect(tmp)
+    try:
+        return _run_sql(con, list(groups.values()), scan_of, order, catalog, tmp, ingest_id, step)
+    except duckdb.Error as exc:
+        raise InputError(f"{new[0][0]}{' (and other inputs)' if len(new) > 1 else ''}: "
+                         f"cannot read ({_first_line(exc)})") from None
+    finally:
+        con.close()
+
+
+def _run_sql(con: duckdb.DuckDBPyConnection, groups: list[_Group], scan_of: dict[str, Path],
+             order: list[str], catalog: Path, tmp: Path, ingest_id: str, step) -> dict:
+    typed, raw = zip(*(_group_view_sql(g) for g in groups), strict=True)
+    con.execute("CREATE TEMP VIEW v AS " + " UNION ALL ".join(typed))
+    files_tbl = pa.table({"__file": order, "__fidx": list(range(len(order))),
+                          "source_file": [str(scan_of[s]) for s in order]})
+    con.register("__files", files_tbl)
+
+    step("checking rows")
+    counts = con.execute("SELECT __file, reason, count(*) FROM v GROUP BY ALL").fetchall()
+    per_file: dict[str, int] = {}
+    rejected: dict[str, int] = {}
+    for fname, reason, n in counts:
+        per_file[fname] = per_file.get(fname, 0) + n
+        if reason is not None:
+            rejected[reason] = rejected.get(reason, 0) + n
+    for scan in order:
+        if per_file.get(scan, 0) == 0:
+            raise InputError(f"{scan_of[scan]}: no input rows")
+    rows_read = sum(per_file.values())
+    valid = rows_read - sum(rejected.values())
+
+    step("finding duplicates")
+    existing = sorted((catalog / AUCTIONS_DIR).glob("*/*.parquet"))
+    n_losers = 0
+    if valid:
+        # Integer hashes make the full pass cheap; a hash collision only adds rows to the
+        # ranking below, which partitions by the real key, so the result stays exact.
+        con.execute(
+            "CREATE TEMP TABLE dupkeys AS SELECT hash(campaign_id, request_id) AS __h FROM v "
+            "WHERE reason IS NULL AND request_id IS NOT NULL GROUP BY 1 HAVING count(*) > 1")
+        parts = [
+            "SELECT __file, file_row_number FROM ("
+            " SELECT __file, file_row_number, row_number() OVER (PARTITION BY campaign_id, "
+            " request_id ORDER BY ts, __fidx, file_row_number) AS rn"
+            " FROM (SELECT *, hash(campaign_id, request_id) AS __h FROM v"
+            "       WHERE reason IS NULL AND request_id IS NOT NULL) vv"
+            " SEMI JOIN dupkeys USING (__h)"
+            " JOIN __files USING (__file)) WHERE rn > 1"
+        ]
+        if existing:
+            glob_old = _lit(str(catalog / AUCTIONS_DIR / "*" / "*.parquet"))
+            parts.append(
+                "SELECT __file, file_row_number FROM (SELECT * FROM v WHERE reason IS NULL "
+                "AND request_id IS NOT NULL) vv SEMI JOIN (SELECT campaign_id, request_id FROM "
+                f"read_parquet({glob_old}) WHERE request_id IS NOT NULL) old "
+                "USING (campaign_id, request_id)")
+        con.execute("CREATE TEMP TABLE losers AS " + " UNION ".join(parts))
+        n_losers = con.execute("SELECT count(*) FROM losers").fetchall()[0][0]
+    if n_losers:
+        rejected[str(RejectReason.DUPLICATE_REQUEST)] = n_losers
+    accepted_expected = valid - n_losers
+
+    out_auctions = tmp / AUCTIONS_DIR
+    step("writing accepted rows")
+    if accepted_expected:
+        anti = " ANTI JOIN losers USING (__file, file_row_number)" if n_losers else ""
+        cols = ", ".join(c.name for c in AUCTION_COLUMNS)
+        # Sorted by campaign then time, so row-group statistics let per-campaign reads skip
+        # most of a partition.
+        con.execute(
+            f"COPY (SELECT {cols}, CAST(ts AS DATE) AS {PARTITION_COLUMN} FROM "
+            f"(SELECT * FROM v WHERE reason IS NULL){anti} ORDER BY campaign_id, ts) "
+            f"TO {_lit(str(out_auctions))} (FORMAT parquet, COMPRESSION zstd, "
+            f"PARTITION_BY ({PARTITION_COLUMN}), "
+            f"FILENAME_PATTERN {_lit('part-' + ingest_id + '-{i}')}, ROW_GROUP_SIZE 122880)")
+
+    step("writing rejected rows")
+    out_rejected = tmp / REJECTED_DIR
+    out_rejected.mkdir()
+    if rows_read - accepted_expected:
+        dup = str(RejectReason.DUPLICATE_REQUEST)
+        selects = []
+        for r in raw:
+            selects.append(f"SELECT * FROM ({r}) WHERE reason IS NOT NULL")
+            if n_losers:
+                # Only the few loser rows are joined, not the whole input.
+                selects.append(
+                    f"SELECT r.* EXCLUDE (reason), {_lit(dup)} AS reason FROM ({r}) r "
+                    "SEMI JOIN losers USING (__file, file_row_number) WHERE r.reason IS NULL")
+        union = " UNION ALL BY NAME ".join(f"({s})" for s in selects)
+        con.execute(
+            f"COPY (SELECT u.* EXCLUDE (reason, __file, file_row_number), "
+            f"u.reason AS {REJECT_REASON_COLUMN}, __files.source_file, "
+            "CAST(u.file_row_number + 1 AS BIGINT) AS source_row "
+            f"FROM ({union}) u JOIN __files USING (__file) ORDER BY __fidx, file_row_number) "
+            f"TO {_lit(str(out_rejected / ('rejected-' + ingest_id + '.parquet')))} "
+            "(FORMAT parquet, COMPRESSION zstd)")
+
+    step("summarising")
+    written = sorted(out_auctions.glob("*/*.parquet")) if out_auctions.exists() else []
+    summary = {"n": 0, "first": None, "last": None, "campaign_rows": {}, "placements": []}
+    if written:
+        glob_new = _lit(str(out_auctions / "*" / "*.parquet"))
+        n, first, last = con.execute(
+            f"SELECT count(*), min(ts), max(ts) FROM read_parquet({glob_new})").fetchall()[0]
+        summary.update(n=n, first=first, last=last)
+        summary["campaign_rows"] = dict(con.execute(
+            f"SELECT campaign_id, count(*) FROM read_parquet({glob_new}) GROUP BY 1 ORDER BY 1"
+        ).fetchall())
+        summary["placements"] = [list(r) for r in con.execute(
+            f"SELECT DISTINCT placement, pricing FROM read_parquet({glob_new}) ORDER BY 1, 2"
+        ).fetchall()]
+    if summary["n"] != accepted_expected:
+        raise RuntimeError(f"internal error: wrote {summary['n']} accepted rows, expected "
+                           f"{accepted_expected}; the catalog was left unchanged")
+    per_file_out = {str(scan_of[s]): per_file[s] for s in order}
+    return {"rows_read": rows_read, "rejected": rejected, "accepted": accepted_expected,
+            "per_file": per_file_out, **summary}
+
+
+def _commit(catalog: Path, tmp: Path, meta: dict | None,
+            new: list[tuple[Path, str, list[str], str]], stats: dict | None,
+            table: pa.Table | None, ingest_id: str, report: IngestReport) -> dict:
+    """Move the staged outputs into place and write catalog.json last."""
+    now = dt.datetime.now(dt.UTC).isoformat(timespec="seconds")
+    meta = meta or {"format": CATALOG_FORMAT, "format_version": CATALOG_FORMAT_VERSION,
+                    "created_at": now, "sources": [], "ingests": [], "campaign_rows": {},
+                    "placements": []}
+    # Campaign table: upsert into the existing one; write to tmp first.
+    campaigns_path = catalog / CAMPAIGNS_FILE
+    old_table = pq.read_table(campaigns_path) if campaigns_path.is_file() else None
+    merged = old_table if table is None else _merge_campaigns(old_table, table)
+    if merged is None:
+        merged = CAMPAIGN_SCHEMA.empty_table()
+    pq.write_table(merged.cast(CAMPAIGN_SCHEMA), tmp / CAMPAIGNS_FILE)
+
+    if stats is not None:
+        report.rows_read = stats["rows_read"]
+        report.accepted = stats["accepted"]
+        report.rejected = dict(sorted(stats["rejected"].items(),
+                                      key=lambda kv: list(RejectReason).index(kv[0])))
+        report.campaign_ids = sorted(stats["campaign_rows"])
+        report.campaigns = len(report.campaign_ids)
+        report.first_ts, report.last_ts = stats["first"], stats["last"]
+        rows = dict(meta.get("campaign_rows", {}))
+        for cid, n in stats["campaign_rows"].items():
+            rows[cid] = rows.get(cid, 0) + n
+        meta["campaign_rows"] = dict(sorted(rows.items()))
+        placements = {tuple(p) for p in meta.get("placements", [])}
+        placements |= {tuple(p) for p in stats["placements"]}
+        meta["placements"] = [list(p) for p in sorted(placements)]
+        for path, fmt, _names, sha in new:
+            entry = {"path": str(path), "format": fmt, "sha256": sha,
+                     "rows_read": stats["per_file"][str(path)], "ingest_id": ingest_id,
+                     "ingested_at": now}
+            meta["sources"].append(entry)
+            report.files.append({**entry, "status": "ingested"})
+        meta["ingests"].append({
+            "ingest_id": ingest_id, "at": now, "rows_read": report.rows_read,
+            "accepted": report.accepted, "rejected": report.rejected,
+            "first_ts": None if report.first_ts is None else report.first_ts.isoformat(),
+            "last_ts": None if report.last_ts is None else report.last_ts.isoformat(),
+        })
+
+    log_ids = set(meta.get("campaign_rows", {}))
+    table_ids = set(merged.column("campaign_id").to_pylist())
+    report.campaigns_without_table_row = sorted(log_ids - table_ids)
+    report.table_campaigns_without_rows = sorted(table_ids - log_ids)
+    if report.campaigns_without_table_row:
+        ids = report.campaigns_without_table_row
+        report.warnings.append(
+            f"{len(ids)} campaign(s) in the log have no row in the campaign table (ingested, "
+            f"but hindsight and backtests need a budget): {_short_list(ids)}")
+    if report.table_campaigns_without_rows:
+        ids = report.table_campaigns_without_rows
+        report.warnings.append(
+            f"{len(ids)} campaign(s) in the campaign table have no auction rows: "
+            f"{_short_list(ids)}")
+    meta["campaigns_without_table_row"] = report.campaigns_without_table_row
+    meta["table_campaigns_without_rows"] = report.table_campaigns_without_rows
+    meta["updated_at"] = now
+
+    # Move into place: data files first, catalog.json last.
+    src_auctions = tmp / AUCTIONS_DIR
+    if src_auctions.exists():
+        for part in sorted(src_auctions.iterdir()):
+            dest = catalog / AUCTIONS_DIR / part.name
+            dest.mkdir(parents=True, exist_ok=True)
+            for f in sorted(part.glob("*.parquet")):
+                os.replace(f, dest / f.name)
+    (catalog / AUCTIONS_DIR).mkdir(exist_ok=True)
+    (catalog / REJECTED_DIR).mkdir(exist_ok=True)
+    src_rejected = tmp / REJECTED_DIR
+    if src_rejected.exists():
+        for f in sorted(src_rejected.glob("*.parquet")):
+            os.replace(f, catalog / REJECTED_DIR / f.name)
+    os.replace(tmp / CAMPAIGNS_FILE, campaigns_path)
+    _write_json_atomic(catalog / CATALOG_JSON, meta)
+    return meta
+
+
+def _short_list(ids: Sequence[str], limit: int = 8) -> str:
+    shown = ", ".join(ids[:limit])
+    return shown + (f" ... (+{len(ids) - limit} more)" if len(ids) > limit else "")
+
+
+def format_report(report: IngestReport) -> list[str]:
+    """Human-readable lines for the CLI."""
+    lines = [f"catalog   {report.catalog}"]
+    for f in report.files:
+        lines.append(f"  {f['status']:<9} {f['path']}" +
+                     (f"  ({f['rows_read']:,} rows)" if f["status"] == "ingested" else
+                      "  (already in the catalog; nothing added)"))
+    lines.append(f"rows read {report.rows_read:,}")
+    lines.append(f"accepted  {report.accepted:,}")
+    lines.append(f"rejected  {report.rejected_total:,}")
+    for reason, n in report.rejected.items():
+        lines.append(f"  {reason:<26} {n:,}")
+    lines.append(f"campaigns {report.campaigns:,}")
+    if report.first_ts is not None:
+        lines.append(f"date span {report.first_ts.isoformat()} .. {report.last_ts.isoformat()}")
+    if report.campaign_table_rows:
+        lines.append(f"campaign table rows {report.campaign_table_rows:,}")
+    lines.extend(f"warning: {w}" for w in report.warnings)
+    return lines
+
+
+__all__ = [
+    "IngestReport", "ingest", "read_campaign_table", "resolve_sources", "format_report",
+    "FIRST_PRICE", "SECOND_PRICE",
+]

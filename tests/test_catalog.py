@@ -1,0 +1,194 @@
+"""Catalog: numpy round trip per campaign, windows, placements, process pools, query CLI."""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import multiprocessing as mp
+import pickle
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from typer.testing import CliRunner
+
+from replay.catalog import Catalog, to_us
+from replay.errors import InputError, UsageError
+from replay.ingest import ingest
+from replay.schema import AUCTION_SCHEMA
+
+T0 = 1_772_409_600_000_000  # 2026-03-02T00:00:00Z in microseconds
+
+
+def _table(n: int = 500, seed: int = 1) -> pa.Table:
+    rng = np.random.default_rng(seed)
+    ts = T0 + rng.integers(0, 3 * 86_400_000_000, n)  # unsorted on purpose
+    placement = rng.choice(["feed", "partner_b", "partner_a"], n)
+    pricing = np.where(placement == "feed", "second_price", "first_price")
+    return pa.Table.from_arrays([
+        pa.array(ts).cast(AUCTION_SCHEMA.field("ts").type),
+        pa.array(rng.choice(["k1", "k2", "k3"], n)),
+        pa.array(placement), pa.array(pricing),
+        pa.array(rng.random(n) * 0.02), pa.array(rng.random(n) * 0.004),
+        pa.array([f"q{i}" for i in range(n)]), pa.array(rng.uniform(0.05, 1.0, n)),
+    ], schema=AUCTION_SCHEMA)
+
+
+@pytest.fixture()
+def catalog(tmp_path: Path) -> tuple[Catalog, pa.Table]:
+    table = _table()
+    pq.write_table(table, tmp_path / "log.parquet")
+    (tmp_path / "campaigns.csv").write_text("campaign_id,budget\nk1,1\nk2,2\nk3,3\n")
+    ingest([tmp_path / "log.parquet"], tmp_path / "cat", campaigns=tmp_path / "campaigns.csv")
+    return Catalog(tmp_path / "cat"), table
+
+
+def _expected(table: pa.Table, cid: str, lo: int | None = None, hi: int | None = None):
+    d = table.to_pydict()
+    ts = table.column("ts").cast(pa.int64()).to_numpy()
+    mask = np.array([c == cid for c in d["campaign_id"]])
+    if lo is not None:
+        mask &= ts >= lo
+    if hi is not None:
+        mask &= ts < hi
+    idx = np.flatnonzero(mask)
+    idx = idx[np.argsort(ts[idx], kind="stable")]
+    pick = {k: [d[k][i] for i in idx] for k in d}
+    return ts[idx], pick
+
+
+def test_arrays_round_trip(catalog) -> None:
+    cat, table = catalog
+    placements = cat.placements()
+    assert placements == [("feed", "second_price"), ("partner_a", "first_price"),
+                          ("partner_b", "first_price")]
+    for cid in ("k1", "k2", "k3"):
+        arr = cat.arrays(cid)
+        ts, rows = _expected(table, cid)
+        assert arr.campaign_id == cid and len(arr) == len(ts)
+        assert arr.ts_us.dtype == np.int64 and np.array_equal(arr.ts_us, ts)
+        assert np.array_equal(arr.value, np.array(rows["value"]))
+        assert np.array_equal(arr.min_win_price, np.array(rows["min_win_price"]))
+        assert np.array_equal(arr.charge_prob, np.array(rows["charge_prob"]))
+        assert arr.placement_code.dtype == np.int32
+        got = [placements[c] for c in arr.placement_code]
+        assert got == list(zip(rows["placement"], rows["pricing"], strict=True))
+        assert np.array_equal(arr.first_price, np.array(rows["pricing"]) == "first_price")
+        assert list(arr.request_id) == rows["request_id"]
+        assert arr.placements == ("feed", "partner_a", "partner_b")
+    assert len(cat.arrays("nobody")) == 0
+
+
+def test_arrays_window_and_iter(catalog) -> None:
+    cat, table = catalog
+    lo, hi = T0 + 86_400_000_000, T0 + 2 * 86_400_000_000 + 5
+    arr = cat.arrays("k2", lo, hi)
+    ts, _ = _expected(table, "k2", lo, hi)
+    assert np.array_equal(arr.ts_us, ts) and len(ts) > 0
+    many = list(cat.iter_arrays(["k3", "nobody", "k1"], start_us=lo, end_us=hi))
+    assert [a.campaign_id for a in many] == ["k3", "nobody", "k1"]
+    for a in many:
+        single = cat.arrays(a.campaign_id, lo, hi)
+        assert np.array_equal(a.ts_us, single.ts_us)
+        assert np.array_equal(a.value, single.value)
+    # polars / arrow access with the same window
+    df = cat.auctions(campaign_id="k2", start=lo, end=hi)
+    assert df.height == len(ts)
+    both = cat.auctions(campaign_id=["k1", "k2"], columns=["campaign_id", "ts"], as_arrow=True)
+    assert set(both.column("campaign_id").to_pylist()) == {"k1", "k2"}
+    assert both.column_names == ["campaign_id", "ts"]
+    with pytest.raises(UsageError, match="unknown auction column"):
+        cat.auctions(columns=["price"])
+
+
+def test_to_us_conversions() -> None:
+    # Reference: 2026-03-02T00:00:00Z = 1772409600 s since the epoch (datetime arithmetic)
+    ref = int((dt.datetime(2026, 3, 2, tzinfo=dt.UTC)
+               - dt.datetime(1970, 1, 1, tzinfo=dt.UTC)).total_seconds()) * 1_000_000
+    assert ref == T0
+    assert to_us("2026-03-02T00:00:00Z") == T0
+    assert to_us("2026-03-02T02:00:00+02:00") == T0
+    assert to_us("2026-03-02") == T0
+    assert to_us(dt.date(2026, 3, 2)) == T0
+    assert to_us(dt.datetime(2026, 3, 2)) == T0  # naive = UTC
+    assert to_us(dt.datetime(2026, 3, 2, 0, 0, 0, 7, tzinfo=dt.UTC)) == T0 + 7
+    assert to_us(np.datetime64("2026-03-02T00:00:00")) == T0
+    assert to_us(T0) == T0 and to_us(None) is None
+    with pytest.raises(UsageError):
+        to_us("last week")
+
+
+def test_facts_and_views(catalog) -> None:
+    cat, table = catalog
+    ts = table.column("ts").cast(pa.int64()).to_numpy()
+    assert cat.time_span_us() == (int(ts.min()), int(ts.max()))
+    assert cat.row_count() == table.num_rows
+    assert cat.campaign_ids() == ["k1", "k2", "k3"]
+    assert {k: v.budget for k, v in cat.campaigns().items()} == {"k1": 1, "k2": 2, "k3": 3}
+    assert cat.sql("SELECT count(*) AS n FROM campaigns")["n"][0] == 3
+    assert cat.sql("SELECT count(*) AS n FROM rejected")["n"][0] == 0
+    assert len(cat.fingerprint()) == 16 and cat.fingerprint() == Catalog(cat.path).fingerprint()
+    with pytest.raises(UsageError, match="query failed"):
+        cat.sql("SELECT nope FROM auctions")
+
+
+def test_not_a_catalog(tmp_path: Path) -> None:
+    with pytest.raises(InputError, match="not a catalog"):
+        Catalog(tmp_path)
+    with pytest.raises(InputError, match="no such catalog"):
+        Catalog(tmp_path / "missing")
+
+
+def _worker_total(cat: Catalog) -> tuple[int, float]:
+    arr = cat.arrays("k1")
+    return len(arr), float(arr.value.sum())
+
+
+def test_catalog_in_worker_processes(catalog) -> None:
+    cat, _ = catalog
+    expect = _worker_total(cat)
+    assert _worker_total(pickle.loads(pickle.dumps(cat))) == expect
+    with ProcessPoolExecutor(1, mp_context=mp.get_context("spawn")) as pool:
+        assert pool.submit(_worker_total, cat).result(timeout=120) == expect
+
+
+def test_query_json_and_formats(catalog, tmp_path: Path) -> None:
+    from replay.cli import app
+
+    cat, table = catalog
+    runner = CliRunner()
+    sql = ("SELECT campaign_id, count(*) AS n, min(ts) AS first FROM auctions "
+           "GROUP BY 1 ORDER BY 1")
+    res = runner.invoke(app, ["query", str(cat.path), sql, "--format", "json"])
+    assert res.exit_code == 0, res.output
+    rows = json.loads(res.stdout)
+    d = table.to_pydict()
+    assert [r["campaign_id"] for r in rows] == ["k1", "k2", "k3"]
+    for r in rows:
+        mine = [t for t, c in zip(d["ts"], d["campaign_id"], strict=True)
+                if c == r["campaign_id"]]
+        assert r["n"] == len(mine)
+        assert dt.datetime.fromisoformat(r["first"]) == min(mine)
+    res = runner.invoke(app, ["query", str(cat.path), "SELECT 1 AS a, 'x' AS b",
+                              "--format", "csv"])
+    assert res.exit_code == 0 and res.stdout.splitlines() == ['"a","b"', '1,"x"']
+    out = tmp_path / "q.parquet"
+    res = runner.invoke(app, ["query", str(cat.path), "SELECT * FROM auctions",
+                              "--format", "parquet", "--out", str(out)])
+    assert res.exit_code == 0 and pq.read_table(out).num_rows == table.num_rows
+    res = runner.invoke(app, ["query", str(cat.path), "SELECT 1"])
+    assert res.exit_code == 0 and "1 rows" in res.stdout
+
+
+def test_query_bad_sql_one_line(catalog, capsys) -> None:
+    from replay.cli import main
+
+    cat, _ = catalog
+    with pytest.raises(SystemExit) as exc:
+        main(["query", str(cat.path), "SELEC oops"])
+    assert exc.value.code == 2
+    err = [line for line in capsys.readouterr().err.splitlines() if line.strip()]
+    assert len(err) == 1 and err[0].startswith("error: query failed")
