@@ -23,7 +23,13 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from replay.errors import InputError, UsageError
-from replay.ingest import AUCTIONS_DIR, CAMPAIGNS_FILE, CATALOG_JSON, read_catalog_json
+from replay.ingest import (
+    AUCTIONS_DIR,
+    CAMPAIGNS_FILE,
+    CATALOG_JSON,
+    connect_duckdb,
+    read_catalog_json,
+)
 from replay.schema import (
     AUCTION_COLUMNS,
     CAMPAIGN_SCHEMA,
@@ -124,8 +130,7 @@ class Catalog:
         pid = os.getpid()
         con = getattr(self._local, "con", None)
         if con is None or getattr(self._local, "pid", None) != pid:
-            con = duckdb.connect()
-            con.execute("SET TimeZone = 'UTC'")
+            con = connect_duckdb()
             self._create_views(con)
             self._local.con, self._local.pid = con, pid
         return con

@@ -541,6 +541,7 @@ def _comparison_section(cmp_: Any, charts: _Charts) -> str:
     if math.isfinite(m.ci_low):
         shapes = [{"type": "rect", "xref": "paper", "x0": 0, "x1": 1, "yref": "y",
                    "y0": m.ci_low, "y1": m.ci_high, "fillcolor": PALETTE[1], "opacity": 0.2,
+                   "layer": "below",
                    "line": {"width": 0}},
                   {"type": "line", "xref": "paper", "x0": 0, "x1": 1, "yref": "y",
                    "y0": m.mean_difference, "y1": m.mean_difference,

@@ -102,6 +102,11 @@ def test_pacing_error_and_volatility_match_the_series(cat: Catalog) -> None:
         p = res.placements.filter(pl.col("campaign_id") == row["campaign_id"])
         assert p["spend"].sum() == pytest.approx(row["spend"])
         assert p["opt_spend"].sum() == pytest.approx(row["opt_spend"], rel=1e-9)
+        # Every row the optimum takes has c/v <= 1/lambda* (threshold on v/c, design.md
+        # section 3), so no placement's marginal cost per result can exceed 1/lambda*.
+        if row["opt_lambda"] > 0:
+            marg = p["opt_marginal_cost_per_result"].drop_nulls().to_numpy()
+            assert np.all(marg <= 1 / row["opt_lambda"] * (1 + 1e-9))
 
 
 def test_flight_clips_window_and_training_precedes_it(cat: Catalog) -> None:

@@ -224,7 +224,7 @@ def demo_catalog(tmp_path_factory):
 
     root = tmp_path_factory.mktemp("demo")
     # 6 campaigns: the first three share one budget (a group), one has a cost cap.
-    files = generate_scenario(root / "src", campaigns=6, days=2, seed=7)
+    files = generate_scenario(root / "src", campaigns=6, days=1, seed=7)
     ingest([files.auctions], root / "catalog", campaigns=files.campaigns)
     return root / "catalog"
 
@@ -280,7 +280,7 @@ def test_backtest_identical_to_local(spark, demo_catalog, tmp_path) -> None:
     from replay.engines.spark import spark_backtest
     from replay.runstore import open_run
 
-    args = dict(sweep={"every": ["30min", "2h"]}, seed=5, charges="sampled")
+    args = dict(sweep={"every": ["30min", "2h"]}, seed=5, charges="sampled", train_days=0.5)
     local = backtest(demo_catalog, "dual-mirror", workers=1, out=tmp_path / "local", **args)
     got = spark_backtest(demo_catalog, "dual-mirror", out=tmp_path / "spark", spark=spark,
                          **args)

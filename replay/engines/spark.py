@@ -66,6 +66,7 @@ _SINGLE_NAME = "__table__"
 # Catalog columns the kernels' input needs (``ts`` travels as int64 microseconds ``ts_us``).
 ARRAY_COLUMNS: tuple[str, ...] = (
     "ts", "campaign_id", "placement", "pricing", "value", "min_win_price", "charge_prob",
+    "request_id",
 )
 
 

@@ -198,27 +198,6 @@ def curve_at(t: float, curve_t: np.ndarray, curve_f: np.ndarray) -> float:
 
 
 @njit(cache=True, nogil=True)
-def record(series, k, group, fb, lam, mu):
-    """Add interval k's feedback to series row k // group (updates merged in buckets)."""
-    row = k // group
-    if k % group == 0:
-        for c in range(SER_SIZE):
-            series[row, c] = 0.0
-    series[row, SER_UPDATE] = k
-    series[row, SER_TS] = fb[FB_T_END]
-    series[row, SER_LAMBDA] = lam
-    series[row, SER_MU] = mu
-    series[row, SER_AUCTIONS] += fb[FB_AUCTIONS]
-    series[row, SER_WINS] += fb[FB_WINS]
-    series[row, SER_RESULTS] += fb[FB_RESULTS]
-    series[row, SER_SPEND] += fb[FB_SPEND]
-    series[row, SER_EXPECTED] += fb[FB_EXPECTED_SPEND]
-    series[row, SER_TARGET] += fb[FB_TARGET]
-    series[row, SER_CUM_SPEND] = fb[FB_CUM_SPEND]
-    series[row, SER_CUM_TARGET] = fb[FB_CUM_TARGET]
-
-
-@njit(cache=True, nogil=True)
 def n_intervals(n, every_n, every_us, flight_start, flight_end):
     """Number of intervals the loop will run (every_n: from the row count)."""
     if every_n > 0:
@@ -227,6 +206,8 @@ def n_intervals(n, every_n, every_us, flight_start, flight_end):
     return max(1, (span + every_us - 1) // every_us)
 
 
+# No cache=True: numba's cache misses for a function taking another dispatcher, so
+# it would only pile up cache files. Compiling costs a few seconds per rule per process.
 @njit(nogil=True)
 def replay_fused(update, state, params, index, feed_index, ts, value, price, charge_prob,
                  placement, first_price, uniforms, sampled, every_n, every_us, flight_start,
@@ -266,6 +247,8 @@ def replay_fused(update, state, params, index, feed_index, ts, value, price, cha
         bids = 0
         above = 0
         min_cost = 0.0
+        last_ch = acc[ACC_LAST_CHARGE]
+        ex_ts = acc[ACC_EXHAUSTED_TS]
         for r in range(i, j):
             if cum >= budget:
                 break
@@ -308,9 +291,11 @@ def replay_fused(update, state, params, index, feed_index, ts, value, price, cha
                     pl_acc[p, 1] += value[r]
                     pl_acc[p, 2] += ch
                     pl_acc[p, 3] += paid
-                    acc[ACC_LAST_CHARGE] = ch
-                    if cum >= budget and acc[ACC_EXHAUSTED_TS] < 0:
-                        acc[ACC_EXHAUSTED_TS] = float(ts[r])
+                    last_ch = ch
+                    if cum >= budget and ex_ts < 0:
+                        ex_ts = float(ts[r])
+        acc[ACC_LAST_CHARGE] = last_ch
+        acc[ACC_EXHAUSTED_TS] = ex_ts
         # F at the interval start is F at the previous end (stored), so one evaluation each.
         f0 = acc[ACC_F_END] if k > 0 else curve_at(t_start, curve_t, curve_f)
         f1 = curve_at(t_end, curve_t, curve_f)

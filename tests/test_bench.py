@@ -1,0 +1,37 @@
+"""`replay bench --quick --json` keeps working and keeps its documented keys.
+
+Timings are never asserted (speed is a benchmark matter); only the JSON contract
+documented in DEVELOPERS.md ("Benchmarks") is.
+"""
+
+import json
+import subprocess
+import sys
+
+CASE_KEYS = {"rows", "seconds", "rows_per_s", "peak_rss_mb", "fraction_of_reference"}
+TOP_CASES = ("reference", "ingest_parquet", "ingest_csv", "catalog_scan", "hindsight",
+             "hindsight_curve", "backtest_demo")
+
+
+def test_bench_quick_json_keys() -> None:
+    proc = subprocess.run(
+        [sys.executable, "-m", "replay.cli", "bench", "--quick", "--json"],
+        capture_output=True, text=True, timeout=600,
+    )
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    result = json.loads(proc.stdout)
+    assert result["format_version"] == 1
+    assert {"cpus", "python", "numpy", "numba"} <= set(result["machine"])
+    for name in TOP_CASES:
+        assert "error" not in result[name], (name, result[name])
+        assert CASE_KEYS <= set(result[name]), name
+        assert result[name]["rows"] > 0
+    from replay.rules.registry import list_rules
+
+    for cls in list_rules():
+        for schedule in ("batch", "every_1000", "per_request"):
+            entry = result["rules"][cls.name][schedule]
+            assert "error" not in entry, (cls.name, schedule, entry)
+            assert CASE_KEYS <= set(entry)
+    assert CASE_KEYS <= set(result["rules"]["ftl"]["1000_updates"])
+    assert result["ftl_vs_hindsight"]["ratio"] > 0
