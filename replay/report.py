@@ -23,6 +23,8 @@ from typing import Any
 import numpy as np
 import polars as pl
 
+from replay.analysis.compare import _open as _compare_open
+from replay.analysis.compare import _run_label as _compare_run_label
 from replay.errors import ReplayError, UsageError
 
 #: Colours of the page and charts (our own neutral palette).
@@ -653,17 +655,9 @@ def _plotly_js() -> str:
     return js.replace("</script", "<\\/script")
 
 
-def _open_run(run: Any) -> Any:
-    if hasattr(run, "manifest") and hasattr(run, "totals"):
-        return run
-    from replay.runstore import open_run
-
-    return open_run(Path(run))
-
-
-def _run_label(run: Any) -> str:
-    path = getattr(run, "path", None) or getattr(run, "run_dir", None)
-    return str(path) if path is not None else f"run of rule {run.manifest.get('rule')}"
+# One way to open a run and name it: the comparison's helpers serve the report too.
+_open_run = _compare_open
+_run_label = _compare_run_label
 
 
 def _pick_campaigns(t: pl.DataFrame, campaigns: Sequence[str] | None) -> list[str]:
