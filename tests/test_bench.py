@@ -35,3 +35,24 @@ def test_bench_quick_json_keys() -> None:
             assert set(entry) >= CASE_KEYS
     assert set(result["rules"]["ftl"]["1000_updates"]) >= CASE_KEYS
     assert result["ftl_vs_hindsight"]["ratio"] > 0
+
+
+def test_bench_table_save_and_against(tmp_path) -> None:
+    """The on-screen table path, --save and --against (a saved run compared with itself)."""
+    import os
+
+    env = {**os.environ, "COLUMNS": "200"}  # rich wraps headers at 80 columns otherwise
+    saved = tmp_path / "bench.json"
+    cmd = [sys.executable, "-m", "replay.cli", "bench", "--quick", "--only", "hindsight"]
+    first = subprocess.run(cmd + ["--save", str(saved)], capture_output=True, text=True,
+                           timeout=600, env=env)
+    assert first.returncode == 0, first.stderr[-2000:]
+    assert "hindsight" in first.stdout and "M rows/s" in first.stdout
+    assert set(json.loads(saved.read_text())["hindsight"]) >= CASE_KEYS
+    second = subprocess.run(cmd + ["--against", str(saved)], capture_output=True, text=True,
+                            timeout=600, env=env)
+    assert second.returncode == 0, second.stderr[-2000:]
+    assert "speed vs saved" in second.stdout
+    bad = subprocess.run(cmd + ["--against", str(tmp_path / "missing.json")],
+                         capture_output=True, text=True, timeout=600)
+    assert bad.returncode == 2 and "missing.json" in bad.stderr

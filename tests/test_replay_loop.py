@@ -248,3 +248,49 @@ def test_grid_shading_equals_shade(seed: int, model: str) -> None:
     for p in range(3):
         for w in ws:
             assert shade_fast(w, p, *args, *acc) == shade(w, p, *args), (w, p)
+
+
+@settings(max_examples=60, deadline=None)
+@given(seed=st.integers(0, 2**31 - 1), m=st.floats(1e-3, 1e3))
+def test_win_thresholds_match_shading_every_row(seed: int, m: float) -> None:
+    """w >= need[row] iff the shaded bid b(w) reaches the row's price, and w > above_w[p]
+    iff b(w) exceeds the logged maximum: the threshold path decides exactly as shading
+    every row (internal consistency of the monotone step best response)."""
+    from replay.engines.campaign import _fit_tables
+    from replay.kernels import replay_loop as rl
+
+    rng = np.random.default_rng(seed)
+    data = contract_data(n=3000, seed=seed % 1000)
+    train, rows = _split(data)
+    placements = engine._placements_of(rows, train)
+    tables, tab, _ = _fit_tables(train, placements, "empirical", None)
+    args = (tab["offsets"], tab["knots_w"], tab["knots_b"], tab["linear"], tab["first_price"],
+            tab["max_logged_price"])
+    plc = rows.placement_code.astype(np.int32)
+    ok, need, above_w = rl.win_thresholds(rows.min_win_price, plc, rows.first_price, True,
+                                          *args)
+    assert ok
+    w = rows.value * m * rng.uniform(0.5, 2.0, len(rows))
+    # Exact knots as values of w, where the steps change.
+    w[: min(50, len(w))] = rng.choice(tab["knots_w"], min(50, len(w)))
+    bid = np.minimum(shade_many(w, plc, tables), w)
+    bid = np.where(rows.first_price, bid, w)
+    assert np.array_equal(w >= need, bid >= rows.min_win_price)
+    assert np.array_equal(w > above_w[plc], bid > tab["max_logged_price"][plc])
+
+
+@pytest.mark.parametrize("rule", ["fixed-multiplier", "dual-mirror", "ftl", "fixed-bid"])
+@pytest.mark.parametrize("charges", ["expected", "sampled"])
+def test_threshold_path_identical_to_per_row_shading(rule: str, charges: str) -> None:
+    """The loop with win thresholds returns bit-identical totals, series and wins to the
+    loop that shades every row (both are the same replay; the first is faster)."""
+    data = contract_data(n=6000)
+    train, rows = _split(data)
+    spec = CampaignSpec("c", budget=0.3 * float(rows.min_win_price.sum()))
+    out = [engine.prepare_replay(rows, train, spec, make_rule(rule, {}), Schedule(every_n=97),
+                                 charges, 3, thresholds=flag).run() for flag in (True, False)]
+    fast, slow = out
+    assert fast.totals == slow.totals
+    assert fast.series.equals(slow.series)
+    assert np.array_equal(fast.won, slow.won)
+    assert fast.placements.equals(slow.placements)

@@ -10,6 +10,7 @@ from typing import Any
 
 import typer
 
+from replay.cli import options
 from replay.errors import UsageError
 
 CAUTION = ("cautions: competitors' bids are held fixed as logged; {share} of bids were above "
@@ -127,17 +128,20 @@ def backtest_cmd(
                              "DEVELOPERS.md for its layout)."),
     as_json: bool = typer.Option(False, "--json", help="Print a JSON list: one object per "
                                  "campaign (per campaign and setting with --sweep)."),
+    engine: str = options.ENGINE,
+    master: str = options.MASTER,
 ) -> None:
     """Replay a bid rule over logged auctions, campaign by campaign, and compare each with
     its hindsight optimum over the same window and budget: results, spend (currency),
     regret (results) and its split, pacing error (currency). With --sweep, every grid
     point runs on every campaign and the settings are ranked by mean relative regret."""
-    from replay.engines.local import backtest
+    from replay.engines import backtest, check_engine
     from replay.engines.windows import parse_set, parse_sweep
     from replay.rules.registry import get_rule
 
     if every is not None and every_n is not None:
         raise UsageError("--every and --every-n exclude each other; give one of them")
+    check_engine(engine, master)
     rule_cls = get_rule(rule)
     params = parse_set(set_ or [], rule_cls)
     axes = parse_sweep(sweep or [], rule_cls)
@@ -146,7 +150,7 @@ def backtest_cmd(
                       every=every if every is not None else "15min", every_n=every_n,
                       charges=charges, seed=seed, out=out, sweep=axes or None,
                       workers=workers, resume=resume, budget_scale=budget_scale,
-                      shading=shading)
+                      shading=shading, engine=engine, master=master)
     for cid, why in result.skipped.items():
         typer.echo(f"warning: campaign {cid} skipped: {why}", err=True)
     if as_json:

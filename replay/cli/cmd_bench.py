@@ -3,8 +3,12 @@
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import typer
+
+#: Top-level keys of the bench result that are not timed cases.
+NOT_CASES = frozenset({"format_version", "config", "machine", "rules", "ftl_vs_hindsight"})
 
 
 def bench(
@@ -20,6 +24,11 @@ def bench(
     only: list[str] = typer.Option([], "--only", help="Run only cases whose name starts "
                                    "with this (repeatable), e.g. hindsight, rule/ftl."),
     as_json: bool = typer.Option(False, "--json", help="Print the result as JSON."),
+    save: Path | None = typer.Option(None, "--save", help="Also write the JSON result to "
+                                     "this file (to compare a later run against)."),
+    against: Path | None = typer.Option(None, "--against", help="A JSON file saved by an "
+                                        "earlier run: adds each case's speed relative to "
+                                        "it (above 1 = faster now)."),
 ) -> None:
     """Time every kernel (median of REPEATS after a warm-up, each case in a fresh process)
     and report rows/s, seconds, peak RSS (MiB) and the fraction of the reference pass."""
@@ -27,6 +36,15 @@ def bench(
     from rich.table import Table
 
     from replay.bench import BenchConfig, run_bench
+    from replay.errors import InputError
+
+    baseline: dict = {}
+    if against is not None:
+        try:
+            baseline = json.loads(against.read_text())
+        except (OSError, ValueError) as exc:
+            raise InputError(f"{against}: not a bench JSON file saved by --save ({exc})") \
+                from exc
 
     cfg = BenchConfig.quick() if quick else BenchConfig(rows=rows, ingest_rows=ingest_rows,
                                                         repeats=repeats)
@@ -34,29 +52,39 @@ def bench(
     result = run_bench(cfg, progress=None if as_json else
                        (lambda name: console.print(f"[dim]running {name}[/dim]")),
                        only=only or None)
+    if save is not None:
+        save.write_text(json.dumps(result, indent=2))
     if as_json:
         typer.echo(json.dumps(result, indent=2))
         return
     table = Table(title=f"replay bench ({cfg.rows:,} rows per campaign)")
-    for col in ("case", "rows", "seconds", "M rows/s", "x reference", "peak RSS MiB"):
+    columns = ["case", "rows", "seconds", "M rows/s", "x reference", "peak RSS MiB"]
+    if baseline:
+        columns.append("speed vs saved")
+    for col in columns:
         table.add_column(col, justify="left" if col == "case" else "right")
 
-    def add(name: str, entry: dict) -> None:
+    def add(name: str, entry: dict, before: dict | None) -> None:
         if "error" in entry:
             table.add_row(name, "-", "-", "-", "-", entry["error"][:60])
             return
         rate = entry.get("rows_per_s") or 0.0
         frac = entry.get("fraction_of_reference")
-        table.add_row(name, f"{entry['rows']:,}", f"{entry['seconds']:.4f}",
-                      f"{rate / 1e6:.1f}", "-" if frac is None else f"{frac:.3f}",
-                      f"{entry['peak_rss_mb']:.0f}")
+        cells = [name, f"{entry['rows']:,}", f"{entry['seconds']:.4f}", f"{rate / 1e6:.1f}",
+                 "-" if frac is None else f"{frac:.3f}", f"{entry['peak_rss_mb']:.0f}"]
+        if baseline:
+            old = (before or {}).get("seconds")
+            cells.append(f"{old / entry['seconds']:.2f}x" if old and entry["seconds"]
+                         else "-")
+        table.add_row(*cells)
 
     for name, entry in result.items():
-        if isinstance(entry, dict) and ("rows" in entry or "error" in entry):
-            add(name, entry)
+        if name not in NOT_CASES and isinstance(entry, dict):
+            add(name, entry, baseline.get(name))
     for rule, schedules in result["rules"].items():
         for schedule, entry in schedules.items():
-            add(f"rule {rule} ({schedule})", entry)
+            add(f"rule {rule} ({schedule})", entry,
+                baseline.get("rules", {}).get(rule, {}).get(schedule))
     Console().print(table)
     if "ftl_vs_hindsight" in result:
         typer.echo(f"ftl 1,000 updates / one hindsight solve: "

@@ -9,6 +9,7 @@ from typing import Any
 
 import typer
 
+from replay.cli import options
 from replay.errors import UsageError
 
 
@@ -97,12 +98,16 @@ def hindsight_cmd(
                              "(.parquet or .csv)."),
     workers: int = typer.Option(None, "--workers", min=1, help="Worker processes (default: "
                                 "the number of CPUs)."),
+    engine: str = options.ENGINE,
+    master: str = options.MASTER,
 ) -> None:
     """Exact hindsight optimum per campaign (or group sharing a budget): results, spend
     (currency), wins, cost per result, the LP upper bound (results), the budget multiplier
     lambda (results per currency) and which constraint binds (budget, cap or none)."""
-    from replay.analysis.hindsight import CurveSpec, hindsight
+    from replay.analysis.hindsight import CurveSpec
+    from replay.engines import check_engine, hindsight
 
+    check_engine(engine, master)
     if not (budget_scale > 0 and math.isfinite(budget_scale)):
         raise UsageError(f"--budget-scale {budget_scale}: must be a positive number")
     spec = None
@@ -115,7 +120,7 @@ def hindsight_cmd(
         raise UsageError(f"--out {out}: unknown file type {out.suffix!r}; use .parquet or .csv")
     df = hindsight(catalog, campaign_ids=campaign or None, start=start, end=end,
                    budget_scale=budget_scale, curve=spec, workers=workers,
-                   progress=not as_json)
+                   progress=not as_json, engine=engine, master=master)
     for msg in df.filter(df["error"].is_not_null())["error"].to_list():
         typer.echo(f"warning: {msg}", err=True)
     if out is not None:

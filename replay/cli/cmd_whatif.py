@@ -8,6 +8,7 @@ from pathlib import Path
 
 import typer
 
+from replay.cli import options
 from replay.errors import UsageError
 
 
@@ -48,18 +49,21 @@ def whatif_cmd(
                                 "landscape for first-price shading (default empirical)."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object with the "
                                  "baseline and changed sides."),
+    engine: str = options.ENGINE,
+    master: str = options.MASTER,
 ) -> None:
     """What if this campaign had bid differently? Replays it as it is (baseline) and with
     the changes, each against the hindsight optimum of its own rows, budget and cap."""
     from rich.table import Table
 
     from replay.cli.cmd_backtest import _console
-    from replay.engines.local import whatif
+    from replay.engines import check_engine, whatif
     from replay.engines.windows import parse_set
     from replay.rules.registry import get_rule
 
     if every is not None and every_n is not None:
         raise UsageError("--every and --every-n exclude each other; give one of them")
+    check_engine(engine, master)
     base_cls = get_rule(baseline_rule)
     new_cls = get_rule(rule) if rule is not None else base_cls
     params = parse_set(set_ or [], new_cls)
@@ -68,7 +72,7 @@ def whatif_cmd(
                  exclude_placements=tuple(exclude_placement or ()), baseline_rule=baseline_rule,
                  baseline_params=base_params, start=start, end=end, train_days=train_days,
                  every=every if every is not None else "15min", every_n=every_n,
-                 charges=charges, seed=seed, shading=shading)
+                 charges=charges, seed=seed, shading=shading, engine=engine, master=master)
     if as_json:
         typer.echo(json.dumps(res.to_dict(), indent=2))
         return

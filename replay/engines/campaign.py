@@ -225,7 +225,8 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
                    window: tuple[int | None, int | None] | None = None,
                    train_window: tuple[int | None, int | None] | None = None,
                    placements: tuple[tuple[str, str], ...] | None = None,
-                   path: str = "auto", series_max: int = 20_000) -> PreparedReplay:
+                   path: str = "auto", series_max: int = 20_000,
+                   thresholds: bool = True) -> PreparedReplay:
     """Window the rows, fit shading, forecast and the rule; return a runnable replay.
 
     ``window``: replay window ``(start_us, end_us)``; default the campaign flight
@@ -236,6 +237,8 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
     (tables fit on the training rows; ``shading_tables`` overrides). ``path``: ``auto``
     (compiled loop for built-in rules), ``fused`` or ``generic``. More than ``series_max``
     updates are merged into consecutive buckets in ``series`` (``update`` = the last one).
+    ``thresholds``: decide wins from per-row win thresholds computed here once (same
+    decisions as shading every row; ``False`` forces the per-row shading loop).
     """
     cid = spec.campaign_id
     if charges not in CHARGE_MODES:
@@ -279,6 +282,24 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
                               end_us=end, train_start_us=train_start, train_end_us=train_end,
                               shading=tables, expected_auctions=expected, traffic_curve=curve)
     rule.fit(context)
+
+    # Everything below depends only on the rows and the landscape: computed once, shared
+    # by every run() (a sweep or a benchmark replays the same prepared campaign).
+    ts = np.ascontiguousarray(rows.ts_us, np.int64)
+    value = np.ascontiguousarray(rows.value, np.float64)
+    price = np.ascontiguousarray(rows.min_win_price, np.float64)
+    cprob = np.ascontiguousarray(rows.charge_prob, np.float64)
+    plc = np.ascontiguousarray(rows.placement_code, np.int32)
+    fp = np.ascontiguousarray(rows.first_price, np.bool_)
+    shade_args = (tab["offsets"], tab["knots_w"], tab["knots_b"], tab["linear"],
+                  tab["first_price"], tab["max_logged_price"],
+                  *rl.build_shade_accel(tab["offsets"], tab["knots_w"], tab["linear"],
+                                        tab["first_price"]))
+    fast, need, above_w = rl.win_thresholds(price, plc, fp, shade_on, *shade_args[:6])
+    fast = bool(fast and thresholds)
+    auctions_per_placement = (np.bincount(plc, minlength=len(placements))[:len(placements)]
+                              if len(rows) else np.zeros(len(placements), np.int64))
+
     def run() -> CampaignReplay:
         """Start the fitted rule afresh and replay (repeatable; used by benchmarks)."""
         n = len(rows)
@@ -298,12 +319,6 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
         group = max(1, -(-total_k // max(int(series_max), 1)))
         series = np.zeros((-(-total_k // group), rl.SER_SIZE))
 
-        ts = np.ascontiguousarray(rows.ts_us, np.int64)
-        value = np.ascontiguousarray(rows.value, np.float64)
-        price = np.ascontiguousarray(rows.min_win_price, np.float64)
-        cprob = np.ascontiguousarray(rows.charge_prob, np.float64)
-        plc = np.ascontiguousarray(rows.placement_code, np.int32)
-        fp = np.ascontiguousarray(rows.first_price, np.bool_)
         sampled = charges == "sampled"
         uniforms = np.random.default_rng(seed).random(n) if sampled else np.zeros(0)
         curve_t, curve_f = rule.curve_ if rule.curve_ is not None else context.uniform_curve()
@@ -322,15 +337,10 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
         capf = float(cap) if cap else 0.0
         common = (ts, value, price, cprob, plc, fp, uniforms, sampled, every_n, every_us, start,
                   end, curve_t, curve_f, float(spec.budget), norm, float(expected))
-        shade_args = (tab["offsets"], tab["knots_w"], tab["knots_b"], tab["linear"],
-                      tab["first_price"], tab["max_logged_price"],
-                  *rl.build_shade_accel(tab["offsets"], tab["knots_w"], tab["linear"],
-                                        tab["first_price"]))
-
         use_fused = path == "fused" or (path == "auto" and _fused_ok(rule))
         fb = np.zeros(rl.FB_SIZE)
-        tail = (capf, bool(rule.fixed_bid), pbid, shade_on, *shade_args, acc, won, pl_acc,
-                series, group, fb)
+        tail = (capf, bool(rule.fixed_bid), pbid, shade_on, *shade_args, fast, need, above_w,
+                acc, won, pl_acc, series, group, fb)
         if use_fused:
             if type(rule).numba_update is None:
                 raise UsageError(f"rule {rule.name!r} has no numba_update; use "
@@ -357,7 +367,7 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
                                                          _past_rows(price, i, j)))
                 _check_state(rule, k)
         return _build(cid, rows, placements, spec, rule, acc, won, pl_acc, series, total_k,
-                      context)
+                      context, auctions_per_placement)
 
     return PreparedReplay(rule=rule, context=context, rows=rows, run=run)
 
@@ -376,7 +386,7 @@ def _check_state(rule: BidRule, k: int) -> None:
 
 
 def _build(cid, rows, placements, spec, rule, acc, won, pl_acc, series, total_k,
-           context) -> CampaignReplay:
+           context, counts) -> CampaignReplay:
     spend = float(acc[rl.ACC_SPEND])
     results = float(acc[rl.ACC_RESULTS])
     bids = float(acc[rl.ACC_BIDS])
@@ -412,8 +422,6 @@ def _build(cid, rows, placements, spec, rule, acc, won, pl_acc, series, total_k,
     }).with_columns(
         win_rate=pl.when(pl.col("auctions") > 0)
         .then(pl.col("wins") / pl.col("auctions")).otherwise(None))
-    p = len(placements)
-    counts = np.bincount(rows.placement_code, minlength=p)[:p] if len(rows) else np.zeros(p)
     present = np.flatnonzero(counts > 0)
     plc = pl.DataFrame({
         "placement": [placements[i][0] for i in present],

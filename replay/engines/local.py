@@ -58,7 +58,6 @@ from replay.runstore import SORT_KEYS, RunStore, conform, jsonable, open_run
 from replay.schema import CampaignArrays, CampaignSpec
 
 SHADING_MODELS = ("empirical", "lognormal")
-ENGINES = ("local",)
 CAUTIONS = ("cautions: competitors' bids and reserves are held fixed as logged; "
             "{share} of bids were above the largest logged minimum winning price of their "
             "placement (extrapolation)")
@@ -94,6 +93,11 @@ class CampaignResult:
     campaign_id: str
     tables: dict[str, pl.DataFrame] = field(default_factory=dict)
     skipped: str | None = None
+
+
+#: ``runner(job, specs, handle)``: runs ``run_campaign`` for every spec somewhere and calls
+#: ``handle(CampaignResult)`` on this process for each (the process pool, or Spark).
+Runner = Callable[[Job, Sequence[CampaignSpec], Callable[[CampaignResult], None]], None]
 
 
 def _rule_class(rule: Any) -> Any:
@@ -355,7 +359,7 @@ def backtest(catalog: Any, rule: Any, params: Mapping[str, Any] | None = None, *
              charges: str = "expected", seed: int = 0, out: str | Path | None = None,
              sweep: Mapping[str, Sequence[Any]] | None = None, workers: int | None = None,
              resume: bool = False, budget_scale: float = 1.0, shading: str = "empirical",
-             engine: str = "local",
+             runner: Runner | None = None,
              on_campaign: Callable[[str], None] | None = None) -> BacktestResult:
     """Backtest ``rule`` over the selected campaigns of ``catalog`` (a Catalog or its path).
 
@@ -366,12 +370,11 @@ def backtest(catalog: Any, rule: Any, params: Mapping[str, Any] | None = None, *
     run folder (None: nothing written). ``resume``: finish the unfinished run in ``out``.
     ``workers``: processes (None or 0: one per core; 1: in this process).
     ``on_campaign(campaign_id)`` is called after each campaign is stored (progress hook).
+    ``runner(job, specs, handle)``: runs the per-campaign tasks elsewhere instead of the
+    process pool (the Spark engine passes one); ``workers`` is then unused.
     """
     from replay.catalog import Catalog
 
-    if engine not in ENGINES:
-        raise UsageError(f"--engine {engine!r}: allowed: {', '.join(ENGINES)} (the Spark "
-                         "engine runs through replay.engines.spark)")
     cat = catalog if isinstance(catalog, Catalog) else Catalog(catalog)
     rule_cls = _rule_class(rule)
     base_params = {k: _convert(rule_cls, k, v) for k, v in dict(params or {}).items()}
@@ -448,7 +451,9 @@ def backtest(catalog: Any, rule: Any, params: Mapping[str, Any] | None = None, *
     n_workers = _resolve_workers(workers, len(todo))
     if job.rule is None:
         n_workers = 1  # a rule class that other processes cannot import runs here
-    if n_workers <= 1 or len(todo) <= 1:
+    if runner is not None:
+        runner(job, todo, handle)
+    elif n_workers <= 1 or len(todo) <= 1:
         for spec in todo:
             handle(_load_and_run(cat, spec, job, rule_cls))
     else:

@@ -17,12 +17,10 @@ this module freely); :func:`require_spark` explains how to install it.
 
 from __future__ import annotations
 
-import inspect
 import io
 import os
 import pickle
 import sys
-import threading
 import traceback
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
@@ -643,11 +641,8 @@ def run_campaigns_on_spark(job: Any, specs: Sequence[CampaignSpec],
         handle(local.CampaignResult(cid, tables, skipped))
 
 
-_PATCH_LOCK = threading.Lock()
-
-
 def spark_backtest(catalog: Any, rule: Any, params: Mapping[str, Any] | None = None, *,
-                   master: str = DEFAULT_MASTER, max_rows_per_group: int | None = None,
+                   master: str | None = DEFAULT_MASTER, max_rows_per_group: int | None = None,
                    spark: Any = None, **kwargs: Any) -> Any:
     """``replay.engines.local.backtest`` with the per-campaign tasks run on Spark.
 
@@ -655,34 +650,21 @@ def spark_backtest(catalog: Any, rule: Any, params: Mapping[str, Any] | None = N
     ``train_days``, ``every``, ``every_n``, ``charges``, ``seed``, ``out``, ``sweep``,
     ``resume``, ``budget_scale``, ``shading``, ...; ``workers`` is ignored) plus ``master``;
     returns the same BacktestResult and writes the same run store. Validation, windows,
-    the manifest and the store stay on the driver (the local engine's code); only the
-    per-campaign work moves to Spark.
+    the manifest, the store and the group optima stay on the driver (the local engine's
+    code); the per-campaign work moves to Spark through the local engine's ``runner`` hook.
     """
     from replay.engines import local
 
     require_spark()
     kwargs.pop("workers", None)
-    kwargs.pop("engine", None)
-    sig = inspect.signature(local.backtest).parameters
-    if "spark" in getattr(local, "ENGINES", ()) and "master" in sig:
-        # The local engine dispatches to run_campaigns_on_spark itself.
-        return local.backtest(catalog, rule, params, engine="spark", master=master, **kwargs)
 
-    # Until the local engine has the engine="spark" hook: swap its process pool for Spark
-    # for the duration of this call (the pool is only used with 2+ workers and 2+ tasks;
-    # a single campaign runs on the driver, which one machine always holds).
-    def pool(job: Any, specs: Sequence[CampaignSpec], n_workers: int,
-             handle: Callable[[Any], None]) -> None:
-        run_campaigns_on_spark(job, specs, handle, master=master,
-                               max_rows_per_group=max_rows_per_group, spark=spark)
+    def runner(job: Any, specs: Sequence[CampaignSpec],
+               handle: Callable[[Any], None]) -> None:
+        if specs:
+            run_campaigns_on_spark(job, specs, handle, master=master or DEFAULT_MASTER,
+                                   max_rows_per_group=max_rows_per_group, spark=spark)
 
-    with _PATCH_LOCK:
-        saved = local._run_pool
-        local._run_pool = pool
-        try:
-            return local.backtest(catalog, rule, params, workers=2, **kwargs)
-        finally:
-            local._run_pool = saved
+    return local.backtest(catalog, rule, params, runner=runner, **kwargs)
 
 
 def spark_whatif(catalog: Any, campaign_id: str, *, master: str = DEFAULT_MASTER,
