@@ -3,8 +3,9 @@ PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
+SPARK_STAMP := $(VENV)/.installed-spark
 
-.PHONY: demo test lint bench test-spark clean
+.PHONY: demo test lint bench clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -12,13 +13,18 @@ $(STAMP): pyproject.toml
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	touch $(STAMP)
 
+# The tests also cover the Spark engine (local[2]): pyspark comes with the spark extra.
+$(SPARK_STAMP): $(STAMP)
+	$(BIN)/python -m pip install --quiet -e '.[test,spark]'
+	touch $(SPARK_STAMP)
+
 demo: $(STAMP)
 	$(BIN)/replay demo --out demo-output
 
 lint: $(STAMP)
 	$(BIN)/ruff check .
 
-test: $(STAMP)
+test: $(SPARK_STAMP)
 	$(BIN)/ruff check .
 	$(BIN)/python -m pytest
 

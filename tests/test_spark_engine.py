@@ -292,3 +292,51 @@ def test_backtest_identical_to_local(spark, demo_catalog, tmp_path) -> None:
         assert getattr(b, name).equals(getattr(a, name)), name
     assert b.manifest["campaigns"] == a.manifest["campaigns"]
     assert b.manifest.get("skipped") == a.manifest.get("skipped")
+
+
+def _cli(args, capsys) -> tuple[int, str, str]:
+    from replay.cli import main
+
+    try:
+        main([str(a) for a in args])
+        code = 0
+    except SystemExit as exc:
+        code = int(exc.code or 0)
+    out = capsys.readouterr()
+    return code, out.out, out.err
+
+
+@needs_spark
+def test_cli_engine_spark_matches_local(spark, demo_catalog, tmp_path, capsys) -> None:
+    # The --engine option end to end: the same JSON from both engines (the active session
+    # of the fixture is reused by the command, as under spark-submit).
+    import json
+
+    runs = {}
+    for engine in ("local", "spark"):
+        code, out, err = _cli(["hindsight", demo_catalog, "--json", "--engine", engine],
+                              capsys)
+        assert code == 0, err
+        runs[("hindsight", engine)] = json.loads(out)
+        code, out, err = _cli(["backtest", demo_catalog, "--rule", "dual-gradient",
+                               "--every", "1h", "--train-days", "0.25", "--json",
+                               "--engine", engine, "--out", tmp_path / engine], capsys)
+        assert code == 0, err
+        runs[("backtest", engine)] = json.loads(out)
+    assert runs[("hindsight", "spark")] == runs[("hindsight", "local")]
+    assert runs[("backtest", "spark")] == runs[("backtest", "local")]
+    assert len(runs[("backtest", "local")]) >= 5
+    cid = runs[("backtest", "local")][0]["campaign_id"]
+    code, out, err = _cli(["whatif", demo_catalog, "--campaign", cid, "--budget", "50",
+                           "--train-days", "0.25", "--json", "--engine", "spark"], capsys)
+    assert code == 0, err
+    assert json.loads(out)["changed"]["budget"] == 50.0
+
+
+def test_cli_engine_errors(tmp_path, capsys) -> None:
+    # One clear line each, before any work: unknown engine, --master without Spark.
+    code, _, err = _cli(["hindsight", tmp_path, "--engine", "cluster"], capsys)
+    assert code == 2 and "--engine 'cluster': allowed: local, spark" in err
+    code, _, err = _cli(["backtest", tmp_path, "--rule", "ftl", "--out", tmp_path / "r",
+                         "--master", "local[2]"], capsys)
+    assert code == 2 and "--master 'local[2]': only with --engine spark" in err

@@ -91,35 +91,24 @@ def backtest_cmd(
                                    "listed by `replay rules`); repeat for several."),
     campaign: list[str] = typer.Option(None, "--campaign", help="Campaign id; repeat for "
                                        "several (default: every campaign with a budget)."),
-    start: str = typer.Option(None, "--start", help="Replay window start, ISO-8601 UTC, "
-                              "inclusive (default: log start + --train-days)."),
-    end: str = typer.Option(None, "--end", help="Replay window end, ISO-8601 UTC, exclusive "
-                            "(default: the end of the log)."),
-    train_days: float = typer.Option(1.0, "--train-days", help="Days of log before each "
-                                     "campaign's replay start used for training (landscape, "
-                                     "forecast, cold start); > 0 (default 1)."),
+    start: str = options.START,
+    end: str = options.END,
+    train_days: float = options.TRAIN_DAYS,
     train_start: str = typer.Option(None, "--train-start", help="Explicit training window "
                                     "start, ISO-8601 UTC (default: from --train-days)."),
     train_end: str = typer.Option(None, "--train-end", help="Explicit training window end, "
                                   "ISO-8601 UTC, at or before --start (default: --start)."),
-    every: str = typer.Option(None, "--every", help="Update interval of log time with a unit "
-                              "s, min, h or d, e.g. 15min (default 15min)."),
-    every_n: int = typer.Option(None, "--every-n", help="Update every N requests instead of "
-                                "every --every (default: off)."),
-    charges: str = typer.Option("expected", "--charges", help="expected: charge the price; "
-                                "sampled: charge price/charge_prob with probability "
-                                "charge_prob, seeded (default expected)."),
-    seed: int = typer.Option(0, "--seed", help="Random seed (sampled charges); each campaign "
-                             "derives its own from (seed, campaign id) (default 0)."),
+    every: str = options.EVERY,
+    every_n: int = options.EVERY_N,
+    charges: str = options.CHARGES,
+    seed: int = options.SEED,
     sweep: list[str] = typer.Option(None, "--sweep", help="Grid axis key=v1,v2,... (rule "
                                     "parameters, every, every_n, charges); repeat for a "
                                     "cartesian grid."),
     budget_scale: float = typer.Option(1.0, "--budget-scale", help="Multiply every budget "
                                        "(currency over the flight) by this factor, > 0 "
                                        "(default 1.0)."),
-    shading: str = typer.Option("empirical", "--shading", help="Landscape model for "
-                                "first-price shading, fit on the training window: empirical "
-                                "or lognormal (default empirical)."),
+    shading: str = options.SHADING,
     workers: int = typer.Option(0, "--workers", min=0, help="Worker processes (0 = one per "
                                 "core; default 0)."),
     resume: bool = typer.Option(False, "--resume", help="Finish the interrupted run in --out "

@@ -32,21 +32,14 @@ def whatif_cmd(
                                       "parameters)."),
     baseline_set: list[str] = typer.Option(None, "--baseline-set", help="Parameter key=value "
                                            "of the baseline rule; repeat for several."),
-    start: str = typer.Option(None, "--start", help="Replay window start, ISO-8601 UTC "
-                              "(default: log start + --train-days)."),
-    end: str = typer.Option(None, "--end", help="Replay window end, ISO-8601 UTC, exclusive "
-                            "(default: the end of the log)."),
-    train_days: float = typer.Option(1.0, "--train-days", help="Training days before the "
-                                     "replay start, > 0 (default 1)."),
-    every: str = typer.Option(None, "--every", help="Update interval with a unit s, min, h "
-                              "or d (default 15min)."),
-    every_n: int = typer.Option(None, "--every-n", help="Update every N requests instead "
-                                "(default: off)."),
-    charges: str = typer.Option("expected", "--charges", help="expected or sampled "
-                                "(default expected)."),
-    seed: int = typer.Option(0, "--seed", help="Random seed (sampled charges; default 0)."),
-    shading: str = typer.Option("empirical", "--shading", help="empirical or lognormal "
-                                "landscape for first-price shading (default empirical)."),
+    start: str = options.START,
+    end: str = options.END,
+    train_days: float = options.TRAIN_DAYS,
+    every: str = options.EVERY,
+    every_n: int = options.EVERY_N,
+    charges: str = options.CHARGES,
+    seed: int = options.SEED,
+    shading: str = options.SHADING,
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object with the "
                                  "baseline and changed sides."),
     engine: str = options.ENGINE,

@@ -14,13 +14,13 @@ F(t_start))`` per interval); rules that want "remaining budget / remaining forec
 from __future__ import annotations
 
 import math
-import re
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 import polars as pl
 
+from replay.engines.windows import parse_duration
 from replay.errors import UsageError
 from replay.kernels import replay_loop as rl
 from replay.rules.base import BidRule, IntervalFeedback, TrainingContext
@@ -31,22 +31,6 @@ DAY_US = 24 * HOUR_US
 WEEK_US = 7 * DAY_US
 CHARGE_MODES = ("expected", "sampled")
 SHADING_MODELS = ("empirical", "lognormal", "none")
-_UNITS_US = {"us": 1, "ms": 1_000, "s": 1_000_000, "sec": 1_000_000, "min": 60_000_000,
-             "m": 60_000_000, "h": HOUR_US, "hour": HOUR_US, "d": DAY_US, "day": DAY_US}
-
-
-def parse_duration_us(text: str) -> int:
-    """``"15min"``, ``"1h"``, ``"30s"``, ``"2d"``, ``"500ms"`` -> microseconds (> 0)."""
-    m = re.fullmatch(r"\s*(\d+(?:\.\d+)?)\s*([a-z]+)\s*", str(text).lower())
-    if not m or m.group(2) not in _UNITS_US:
-        raise UsageError(f"--every {text!r}: not a duration; use a number and a unit "
-                         f"({', '.join(sorted(_UNITS_US))}), e.g. 15min")
-    us = int(round(float(m.group(1)) * _UNITS_US[m.group(2)]))
-    if us <= 0:
-        raise UsageError(f"--every {text!r}: must be > 0")
-    return us
-
-
 @dataclass(frozen=True)
 class Schedule:
     """When the rule updates: every ``every_us`` microseconds of log time from the flight
@@ -67,7 +51,7 @@ class Schedule:
         """From CLI options (``every_n`` wins when both are given)."""
         if every_n is not None:
             return cls(every_n=int(every_n))
-        return cls(every_us=parse_duration_us(every or "15min"))
+        return cls(every_us=parse_duration(every or "15min", "--every"))
 
     def describe(self) -> dict[str, float | int]:
         if self.every_n is not None:
