@@ -11,6 +11,7 @@ JSON keys are stable and documented in DEVELOPERS.md ("Benchmarks").
 
 from __future__ import annotations
 
+import contextlib
 import os
 import platform
 import resource
@@ -22,6 +23,7 @@ from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
 from multiprocessing import get_context
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -42,10 +44,15 @@ class BenchConfig:
     #: Run all cases in one child process (quick mode): faster, but peak RSS is then the
     #: running maximum over the cases so far, not each case's own.
     shared_process: bool = False
+    #: Rows of the ``--large`` cases: hindsight at this size and a backtest over a catalog
+    #: of ``large_campaigns`` campaigns holding this many rows in all.
+    large_rows: int = 100_000_000
+    large_campaigns: int = 100
 
     @classmethod
     def quick(cls) -> BenchConfig:
-        return cls(rows=200_000, ingest_rows=100_000, repeats=2, shared_process=True)
+        return cls(rows=200_000, ingest_rows=100_000, repeats=2, shared_process=True,
+                   large_rows=200_000, large_campaigns=2)
 
 
 def _peak_rss_mb() -> float:
@@ -90,27 +97,34 @@ def _case_reference(cfg: BenchConfig) -> dict[str, object]:
     return _result(len(arrays), seconds)
 
 
-def _write_ingest_inputs(cfg: BenchConfig, folder: Path) -> tuple[Path, Path, Path]:
+def _log_table(arrays: Any, campaign_id: str, first_request: int = 0) -> Any:
+    """A synthetic campaign as an auction-log table (data/SCHEMA.md columns)."""
     import pyarrow as pa
+
+    placements = np.array(arrays.placements, dtype=object)
+    n = len(arrays)
+    return pa.table({
+        "ts": pa.array(arrays.ts_us, pa.timestamp("us", tz="UTC")),
+        "campaign_id": pa.array(np.full(n, campaign_id, dtype=object), pa.string()),
+        "placement": pa.array(placements[arrays.placement_code], pa.string()),
+        "pricing": pa.array(np.where(arrays.first_price, "first_price", "second_price"),
+                            pa.string()),
+        "value": arrays.value,
+        "min_win_price": arrays.min_win_price,
+        "request_id": pa.array(np.char.add("r", np.arange(first_request, first_request + n)
+                                           .astype(str)), pa.string()),
+        "charge_prob": arrays.charge_prob,
+    })
+
+
+def _write_ingest_inputs(cfg: BenchConfig, folder: Path) -> tuple[Path, Path, Path]:
     import pyarrow.csv as pacsv
     import pyarrow.parquet as pq
 
     from replay.scenario import synthetic_campaign
 
     arrays = synthetic_campaign(cfg.ingest_rows, seed=cfg.seed, campaign_id="bench")
-    placements = np.array(arrays.placements, dtype=object)
-    table = pa.table({
-        "ts": pa.array(arrays.ts_us, pa.timestamp("us", tz="UTC")),
-        "campaign_id": pa.array(np.full(len(arrays), "bench", dtype=object), pa.string()),
-        "placement": pa.array(placements[arrays.placement_code], pa.string()),
-        "pricing": pa.array(np.where(arrays.first_price, "first_price", "second_price"),
-                            pa.string()),
-        "value": arrays.value,
-        "min_win_price": arrays.min_win_price,
-        "request_id": pa.array(np.char.add("r", np.arange(len(arrays)).astype(str)),
-                               pa.string()),
-        "charge_prob": arrays.charge_prob,
-    })
+    table = _log_table(arrays, "bench")
     parquet_path = folder / "bench.parquet"
     csv_path = folder / "bench.csv"
     pq.write_table(table, parquet_path)
@@ -163,6 +177,85 @@ def _case_hindsight(cfg: BenchConfig) -> dict[str, object]:
         lambda: solve(arrays.value, arrays.min_win_price, budget), cfg.repeats
     )
     return _result(len(arrays), seconds)
+
+
+def _case_hindsight_rows(cfg: BenchConfig, rows: int) -> dict[str, object]:
+    cfg = BenchConfig(rows=rows, repeats=max(1, min(cfg.repeats, 3)), seed=cfg.seed)
+    return _case_hindsight(cfg)
+
+
+class _TreeMemory:
+    """Peak summed RSS (MiB) of this process and its children, sampled every 0.1 s (a
+    process pool's workers hold memory at the same time, so one ru_maxrss is not enough)."""
+
+    def __init__(self) -> None:
+        import threading
+
+        self.peak_mb = 0.0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._watch, daemon=True)
+
+    def _watch(self) -> None:
+        import psutil
+
+        me = psutil.Process()
+        while not self._stop.is_set():
+            total = 0
+            for proc in [me, *me.children(recursive=True)]:
+                with contextlib.suppress(psutil.Error):  # a worker that just exited
+                    total += proc.memory_info().rss
+            self.peak_mb = max(self.peak_mb, total / 2**20)
+            self._stop.wait(0.1)
+
+    def __enter__(self) -> _TreeMemory:
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self._stop.set()
+        self._thread.join()
+
+
+def _case_backtest_large(cfg: BenchConfig) -> dict[str, object]:
+    """Ingest ``large_rows`` rows of ``large_campaigns`` synthetic campaigns, then time one
+    backtest over all of them (2 workers) with the peak memory of the whole process tree."""
+    import pyarrow.parquet as pq
+
+    from replay.catalog import Catalog
+    from replay.engines.local import backtest
+    from replay.ingest import ingest
+    from replay.scenario import synthetic_campaign
+
+    n_camp = max(1, cfg.large_campaigns)
+    per = max(1000, cfg.large_rows // n_camp)
+    with tempfile.TemporaryDirectory(prefix="replay-bench-") as tmp:
+        folder = Path(tmp)
+        budgets = []
+        files = []
+        for c in range(n_camp):
+            cid = f"bench_{c:04d}"
+            arrays = synthetic_campaign(per, seed=cfg.seed + c, campaign_id=cid)
+            budgets.append((cid, 0.3 * float(arrays.min_win_price.sum())))
+            path = folder / f"log_{c:04d}.parquet"
+            pq.write_table(_log_table(arrays, cid, c * per), path)
+            files.append(path)
+            del arrays
+        campaigns = folder / "campaigns.csv"
+        campaigns.write_text("campaign_id,budget\n" +
+                             "".join(f"{cid},{b!r}\n" for cid, b in budgets))
+        t0 = time.perf_counter()
+        ingest(files, folder / "catalog", campaigns=campaigns)
+        ingest_s = time.perf_counter() - t0
+        for path in files:
+            path.unlink()
+        catalog = Catalog(folder / "catalog")
+        rows = catalog.row_count()
+        with _TreeMemory() as mem:
+            t0 = time.perf_counter()
+            backtest(catalog, "dual-mirror", out=folder / "run", workers=2)
+            seconds = time.perf_counter() - t0
+    return _result(rows, seconds, campaigns=n_camp, workers=2, ingest_seconds=ingest_s,
+                   peak_tree_rss_mb=mem.peak_mb)
 
 
 def _case_hindsight_curve(cfg: BenchConfig) -> dict[str, object]:
@@ -220,6 +313,13 @@ CASES: dict[str, Callable[[BenchConfig], dict[str, object]]] = {
     "backtest_demo": _case_backtest_demo,
 }
 
+#: Cases run only with ``--large`` (minutes, several GiB): how cost grows with rows.
+LARGE_CASES: dict[str, Callable[[BenchConfig], dict[str, object]]] = {
+    "hindsight_1m": lambda cfg: _case_hindsight_rows(cfg, 1_000_000),
+    "hindsight_large": lambda cfg: _case_hindsight_rows(cfg, cfg.large_rows),
+    "backtest_large": _case_backtest_large,
+}
+
 
 def rule_case_names() -> list[str]:
     """Names of the built-in rules benchmarked at both schedules."""
@@ -234,7 +334,7 @@ def _run_case(name: str, cfg: BenchConfig) -> dict[str, object]:
     if name.startswith("rule/"):
         _, rule, schedule = name.split("/")
         return _case_rule(cfg, rule, schedule)
-    return CASES[name](cfg)
+    return {**CASES, **LARGE_CASES}[name](cfg)
 
 
 def _run_cases(names: list[str], cfg: BenchConfig) -> dict[str, dict[str, object]]:
@@ -267,9 +367,10 @@ def machine_info() -> dict[str, object]:
 
 
 def run_bench(cfg: BenchConfig, progress: Callable[[str], None] | None = None,
-              only: list[str] | None = None) -> dict[str, object]:
-    """Run every case (or those in ``only``) and return the JSON-ready result."""
-    names = list(CASES)
+              only: list[str] | None = None, large: bool = False) -> dict[str, object]:
+    """Run every case (or those in ``only``; ``large`` adds LARGE_CASES) and return the
+    JSON-ready result."""
+    names = list(CASES) + (list(LARGE_CASES) if large else [])
     for rule in rule_case_names():
         names += [f"rule/{rule}/{schedule}" for schedule in RULE_SCHEDULES]
     names.append("rule/ftl/1000_updates")
@@ -296,7 +397,9 @@ def run_bench(cfg: BenchConfig, progress: Callable[[str], None] | None = None,
     out: dict[str, object] = {
         "format_version": BENCH_FORMAT_VERSION,
         "config": {"rows": cfg.rows, "ingest_rows": cfg.ingest_rows,
-                   "repeats": cfg.repeats, "seed": cfg.seed},
+                   "repeats": cfg.repeats, "seed": cfg.seed,
+                   **({"large_rows": cfg.large_rows, "large_campaigns": cfg.large_campaigns}
+                      if large else {})},
         "machine": machine_info(),
     }
     rules: dict[str, dict[str, object]] = {}

@@ -56,3 +56,22 @@ def test_bench_table_save_and_against(tmp_path) -> None:
     bad = subprocess.run(cmd + ["--against", str(tmp_path / "missing.json")],
                          capture_output=True, text=True, timeout=600)
     assert bad.returncode == 2 and "missing.json" in bad.stderr
+
+
+def test_bench_large_cases_keys() -> None:
+    """``--large`` (here with --quick's small sizes): hindsight scaling and the backtest over
+    a many-campaign catalog with the peak memory of the whole process tree."""
+    proc = subprocess.run(
+        [sys.executable, "-m", "replay.cli", "bench", "--quick", "--large", "--only",
+         "hindsight_", "--only", "backtest_large", "--json"],
+        capture_output=True, text=True, timeout=600,
+    )
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    result = json.loads(proc.stdout)
+    for name in ("hindsight_1m", "hindsight_large", "backtest_large"):
+        assert "error" not in result[name], (name, result[name])
+        assert set(result[name]) >= CASE_KEYS, name
+    big = result["backtest_large"]
+    assert big["rows"] == 200_000 and big["campaigns"] == 2
+    assert big["peak_tree_rss_mb"] > 0 and big["ingest_seconds"] > 0
+    assert result["config"]["large_rows"] == 200_000

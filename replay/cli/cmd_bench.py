@@ -21,6 +21,15 @@ def bench(
     quick: bool = typer.Option(False, "--quick",
                                help="Small sizes (200,000 rows, 2 repeats): checks the "
                                "command works; the numbers mean little."),
+    large: bool = typer.Option(False, "--large", help="Also run the large cases: hindsight "
+                               "at 1M and --large-rows rows, and a backtest over a catalog "
+                               "of that many rows (minutes; several GiB)."),
+    large_rows: int = typer.Option(None, "--large-rows", min=10_000,
+                                   help="Rows of the large cases (default 100,000,000; "
+                                   "200,000 with --quick)."),
+    large_campaigns: int = typer.Option(None, "--large-campaigns", min=1,
+                                        help="Campaigns of the large backtest (default 100; "
+                                        "2 with --quick)."),
     only: list[str] = typer.Option([], "--only", help="Run only cases whose name starts "
                                    "with this (repeatable), e.g. hindsight, rule/ftl."),
     as_json: bool = typer.Option(False, "--json", help="Print the result as JSON."),
@@ -46,12 +55,18 @@ def bench(
             raise InputError(f"{against}: not a bench JSON file saved by --save ({exc})") \
                 from exc
 
+    from dataclasses import replace
+
     cfg = BenchConfig.quick() if quick else BenchConfig(rows=rows, ingest_rows=ingest_rows,
                                                         repeats=repeats)
+    if large_rows is not None:
+        cfg = replace(cfg, large_rows=large_rows)
+    if large_campaigns is not None:
+        cfg = replace(cfg, large_campaigns=large_campaigns)
     console = Console(stderr=True)
     result = run_bench(cfg, progress=None if as_json else
                        (lambda name: console.print(f"[dim]running {name}[/dim]")),
-                       only=only or None)
+                       only=only or None, large=large)
     if save is not None:
         save.write_text(json.dumps(result, indent=2))
     if as_json:

@@ -58,6 +58,8 @@ from collections import namedtuple
 import numpy as np
 from numba import njit
 
+from replay.kernels.bits import f64_bits
+
 _BUCKET_BITS = 17
 N_BUCKETS = 1 << _BUCKET_BITS
 _SHIFT = 52 - 11  # bits >> _SHIFT: exponent and 11 mantissa bits (relative width 2**-11)
@@ -151,8 +153,6 @@ def ftl_insert(index: FtlIndex, value: np.ndarray, price: np.ndarray) -> None:
     count = index.state_i[0]
     if count + m > index.rows.shape[0] // 3:
         raise ValueError("ftl_insert: index capacity exceeded (create it with a larger capacity)")
-    buf = np.empty(1, np.float64)
-    bits = buf.view(np.int64)
     base = index.state_i[2]
     if base < 0:
         # Centre the 2**20 buckets (32 octaves of ratio) on this batch's mean log ratio;
@@ -165,8 +165,7 @@ def ftl_insert(index: FtlIndex, value: np.ndarray, price: np.ndarray) -> None:
             if v > 0.0 and p > 0.0:
                 r = v / p
                 if r < np.inf:
-                    buf[0] = r
-                    ksum += bits[0] >> _SHIFT
+                    ksum += f64_bits(r) >> _SHIFT
                     kn += 1
         if kn > 0:
             base = int(ksum / kn) - N_BUCKETS // 2
@@ -194,8 +193,7 @@ def ftl_insert(index: FtlIndex, value: np.ndarray, price: np.ndarray) -> None:
         if r == 0.0:
             zero_cost += p  # ratio 0 ranks last; kept as one sum
             continue
-        buf[0] = r
-        b = (bits[0] >> _SHIFT) - base
+        b = (f64_bits(r) >> _SHIFT) - base
         if b < 0:
             b = 0
         elif b > top:

@@ -29,9 +29,9 @@ shaded. Both decide exactly the same wins (a test compares them).
 from __future__ import annotations
 
 import numpy as np
-from numba import njit, types
-from numba.core.extending import intrinsic
+from numba import njit
 
+from replay.kernels.bits import f64_bits
 from replay.kernels.ftl_index import ftl_insert, ftl_lambda_for_spend
 from replay.kernels.landscape import shade
 
@@ -106,17 +106,6 @@ ACCEL_PER_OCTAVE = 64  # grid cells per factor 2 of w in the shading lookup acce
 ACCEL_MAX_CELLS = 1 << 16  # per placement; wider tables use ``shade`` itself
 
 
-@intrinsic
-def _f64_bits(typingctx, x):
-    """The IEEE-754 bit pattern of a float64 as int64 (a register move, no libm call)."""
-    sig = types.int64(types.float64)
-
-    def codegen(context, builder, signature, args):
-        return builder.bitcast(args[0], context.get_value_type(types.int64))
-
-    return sig, codegen
-
-
 _KEY_SHIFT = 52 - 6  # exponent and the top 6 mantissa bits: ACCEL_PER_OCTAVE = 2**6 cells
 
 
@@ -124,7 +113,7 @@ _KEY_SHIFT = 52 - 6  # exponent and the top 6 mantissa bits: ACCEL_PER_OCTAVE = 
 def _cell_key(w):
     """A monotone integer key of w >= 0: ACCEL_PER_OCTAVE cells per octave (the top bits of
     the double; for w > 0 the bit pattern orders like the value)."""
-    return _f64_bits(w) >> _KEY_SHIFT
+    return f64_bits(w) >> _KEY_SHIFT
 
 
 @njit(cache=True, nogil=True)
@@ -170,7 +159,7 @@ def grid_shade(w, p, offsets, knots_w, knots_b, kmin, ncell, start, idx):
     """``shade`` of a step table with a grid (``ncell[p] > 0``) for finite ``w > 0``."""
     lo = offsets[p]
     hi = offsets[p + 1]
-    c = (_f64_bits(w) >> _KEY_SHIFT) - kmin[p]
+    c = (f64_bits(w) >> _KEY_SHIFT) - kmin[p]
     if c < 0:
         return w  # below every knot: no knot strictly below w
     if c >= ncell[p]:
@@ -422,7 +411,7 @@ def _make_fused(update_inline):
                                         # as the lookup itself
                                         lo = offsets[p]
                                         hi = offsets[p + 1]
-                                        cell = (_f64_bits(w) >> _KEY_SHIFT) - ax_kmin[p]
+                                        cell = (f64_bits(w) >> _KEY_SHIFT) - ax_kmin[p]
                                         if cell >= ax_ncell[p]:
                                             b = knots_b[hi - 1]
                                         elif cell >= 0:
