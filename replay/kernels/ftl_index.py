@@ -68,19 +68,30 @@ N_SUPER = N_BUCKETS >> _SUPER_BITS
 _SMALL = 24  # below this many rows, the in-bucket selection sorts instead of partitioning
 _SLOTS = 4  # buckets whose sorted rows are kept between queries
 _SLOT_ROWS = 1 << 15  # most rows a cached bucket may hold (larger ones use quickselect)
+# state_i slots beyond (inserted, stored, base key): the band of buckets that keep row
+# lists (first and last bucket, -1 = none yet), its next half-width, and moves so far.
+_I_BAND_LO = 3
+_I_BAND_HI = 4
+_I_BAND_W = 5
+_I_MOVES = 6
+_I_LINKS = 7  # link records in use
+_BAND0 = 64  # initial half-width in buckets (~3 % of ratio either side)
+_BAND_MAX = 1 << 12
 # Bucket record layout in ``bucket`` (float64, 4 slots per bucket; int slots via ``bucket_i``).
 _B_COST = 0  # total cost (currency)
 _B_COUNT = 1  # rows (int64 view)
 _B_HEAD = 2  # first row of the list, -1 = none (int64 view)
 _B_FIRST = 3  # the ratio if every row of the bucket has the same one, NaN if mixed
-# Row record layout in ``rows`` (float64, 3 slots per row; the link via ``rows_i``).
+# Row record layout in ``rows`` (float64, 2 slots per row); band rows are also on a
+# bucket list of link records in ``links`` (int64, 2 slots: row, next link or -1).
 _R_RATIO = 0
 _R_COST = 1
-_R_NEXT = 2
+_L_ROW = 0
+_L_NEXT = 1
 
 FtlIndex = namedtuple(
     "FtlIndex",
-    ["rows", "rows_i", "bucket", "bucket_i", "scost", "state_i", "state_f",
+    ["rows", "links", "bucket", "bucket_i", "scost", "state_i", "state_f",
      "cache_r", "cache_c", "cache_meta"],
 )
 FtlIndex.__doc__ = """Past rows bucketed by ratio (see the module docstring).
@@ -104,7 +115,7 @@ def ftl_index_new(capacity: int) -> FtlIndex:
     if capacity < 0:
         raise ValueError("ftl_index_new: capacity must be >= 0")
     cap = max(capacity, 1)
-    rows = np.empty(3 * cap, np.float64)
+    rows = np.empty(2 * cap, np.float64)
     bucket = np.zeros(4 * N_BUCKETS, np.float64)
     bucket_i = bucket.view(np.int64)
     for b in range(N_BUCKETS):
@@ -113,14 +124,43 @@ def ftl_index_new(capacity: int) -> FtlIndex:
     meta = np.full(3 * _SLOTS + 2, -1, np.int64)
     meta[3 * _SLOTS] = 0
     return FtlIndex(
-        rows, rows.view(np.int64), bucket, bucket_i,
+        rows, np.empty(2 * cap, np.int64), bucket, bucket_i,
         np.zeros(N_SUPER, np.float64),
-        np.array([0, 0, -1], np.int64),
+        np.array([0, 0, -1, -1, -1, _BAND0, 0, 0], np.int64),
         np.zeros(2, np.float64),
         np.empty(_SLOTS * slot, np.float64),
         np.empty(_SLOTS * slot, np.float64),
         meta,
     )
+
+
+@njit(cache=True, nogil=True)
+def ftl_index_reset(index: FtlIndex) -> None:
+    """Empty ``index`` in place, keeping its memory: a rule replayed again (a sweep, a
+    benchmark repeat) then skips the operating system's zeroing of fresh pages, which
+    costs about as much as inserting the rows."""
+    bucket = index.bucket
+    bucket_i = index.bucket_i
+    for b in range(N_BUCKETS):
+        q = 4 * b
+        bucket[q + _B_COST] = 0.0
+        bucket_i[q + _B_COUNT] = 0
+        bucket_i[q + _B_HEAD] = -1
+        bucket[q + _B_FIRST] = 0.0
+    index.scost[:] = 0.0
+    st = index.state_i
+    st[0] = 0
+    st[1] = 0
+    st[2] = -1
+    st[_I_BAND_LO] = -1
+    st[_I_BAND_HI] = -1
+    st[_I_BAND_W] = _BAND0
+    st[_I_MOVES] = 0
+    st[_I_LINKS] = 0
+    index.state_f[:] = 0.0
+    meta = index.cache_meta
+    meta[:] = -1
+    meta[3 * _SLOTS] = 0
 
 
 @njit(cache=True, nogil=True)
@@ -138,7 +178,75 @@ def ftl_total_spend(index: FtlIndex) -> float:
 @njit(cache=True, nogil=True)
 def ftl_capacity(index: FtlIndex) -> int:
     """Rows the index can hold."""
-    return index.rows.shape[0] // 3
+    return index.rows.shape[0] // 2
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _link(links, bucket, bucket_i, q, j, r, n_links):
+    """Push stored row ``j`` (ratio ``r``) on the list of the bucket at record ``q`` as link
+    record ``n_links``."""
+    links[2 * n_links + _L_ROW] = j
+    links[2 * n_links + _L_NEXT] = bucket_i[q + _B_HEAD]
+    bucket_i[q + _B_HEAD] = n_links
+    n_b = bucket_i[q + _B_COUNT]
+    if n_b == 0:
+        bucket[q + _B_FIRST] = r
+    elif bucket[q + _B_FIRST] != r:
+        bucket[q + _B_FIRST] = np.nan
+    bucket_i[q + _B_COUNT] = n_b + 1
+
+
+@njit(cache=True, nogil=True)
+def _move_band(index: FtlIndex, centre: int) -> None:
+    """Make buckets ``centre +- width`` the band: relink their rows from all stored rows
+    (oldest first, so each list is newest first as incremental inserts leave it), forget
+    the old band's lists and the sorted-bucket cache, then double the width for next time
+    (up to ``_BAND_MAX``) so a drifting multiplier moves the band ever more rarely."""
+    st = index.state_i
+    bucket = index.bucket
+    bucket_i = index.bucket_i
+    rows = index.rows
+    links = index.links
+    top = N_BUCKETS - 1
+    old_lo = st[_I_BAND_LO]
+    old_hi = st[_I_BAND_HI]
+    if old_lo >= 0:
+        for b in range(old_lo, old_hi + 1):
+            bucket_i[4 * b + _B_HEAD] = -1
+            bucket_i[4 * b + _B_COUNT] = 0
+    width = st[_I_BAND_W]
+    lo = max(0, centre - width)
+    hi = min(top, centre + width)
+    for b in range(lo, hi + 1):
+        bucket_i[4 * b + _B_HEAD] = -1
+        bucket_i[4 * b + _B_COUNT] = 0
+    base = st[2]
+    n_links = 0
+    for j in range(st[1]):
+        r = rows[2 * j + _R_RATIO]
+        b = (f64_bits(r) >> _SHIFT) - base
+        if b < 0:
+            b = 0
+        elif b > top:
+            b = top
+        if lo <= b <= hi:
+            _link(links, bucket, bucket_i, 4 * b, j, r, n_links)
+            n_links += 1
+    st[_I_LINKS] = n_links
+    st[_I_BAND_LO] = lo
+    st[_I_BAND_HI] = hi
+    st[_I_BAND_W] = min(2 * width, _BAND_MAX)
+    st[_I_MOVES] += 1
+    meta = index.cache_meta
+    for k in range(_SLOTS):
+        meta[3 * k] = -1
+    meta[3 * _SLOTS + 1] = -1
+
+
+@njit(cache=True, nogil=True)
+def ftl_band_moves(index: FtlIndex) -> int:
+    """How many times the band of row-keeping buckets was rebuilt (a diagnostic)."""
+    return index.state_i[_I_MOVES]
 
 
 @njit(cache=True, nogil=True)
@@ -151,7 +259,7 @@ def ftl_insert(index: FtlIndex, value: np.ndarray, price: np.ndarray) -> None:
     if m == 0:
         return
     count = index.state_i[0]
-    if count + m > index.rows.shape[0] // 3:
+    if count + m > index.rows.shape[0] // 2:
         raise ValueError("ftl_insert: index capacity exceeded (create it with a larger capacity)")
     base = index.state_i[2]
     if base < 0:
@@ -172,13 +280,16 @@ def ftl_insert(index: FtlIndex, value: np.ndarray, price: np.ndarray) -> None:
             index.state_i[2] = base
     stored = index.state_i[1]
     rows = index.rows
-    rows_i = index.rows_i
+    links = index.links
+    n_links = index.state_i[_I_LINKS]
     bucket = index.bucket
     bucket_i = index.bucket_i
     scost = index.scost
     total = 0.0
     zero_cost = 0.0
     top = N_BUCKETS - 1
+    band_lo = index.state_i[_I_BAND_LO]
+    band_hi = index.state_i[_I_BAND_HI]
     for i in range(m):
         v = value[i]
         p = price[i]
@@ -198,23 +309,19 @@ def ftl_insert(index: FtlIndex, value: np.ndarray, price: np.ndarray) -> None:
             b = 0
         elif b > top:
             b = top
-        o = 3 * stored
+        o = 2 * stored
         rows[o + _R_RATIO] = r
         rows[o + _R_COST] = p
         q = 4 * b
-        rows_i[o + _R_NEXT] = bucket_i[q + _B_HEAD]
-        bucket_i[q + _B_HEAD] = stored
-        n_b = bucket_i[q + _B_COUNT]
-        if n_b == 0:
-            bucket[q + _B_FIRST] = r
-        elif bucket[q + _B_FIRST] != r:
-            bucket[q + _B_FIRST] = np.nan
-        bucket_i[q + _B_COUNT] = n_b + 1
         bucket[q + _B_COST] += p
         scost[b >> _SUPER_BITS] += p
+        if band_lo <= b <= band_hi:  # only band buckets keep their rows (see the docstring)
+            _link(links, bucket, bucket_i, q, stored, r, n_links)
+            n_links += 1
         stored += 1
     index.state_i[0] = count + m
     index.state_i[1] = stored
+    index.state_i[_I_LINKS] = n_links
     index.state_f[0] += total
     index.state_f[1] += zero_cost
 
@@ -286,7 +393,7 @@ def _cached_select(index: FtlIndex, found: int, m: int, slot_rows: int, t: float
     bucket is not cached yet (the caller then selects without the cache)."""
     meta = index.cache_meta
     rows = index.rows
-    rows_i = index.rows_i
+    links = index.links
     head = index.bucket_i[4 * found + _B_HEAD]
     slot = -1
     for k in range(_SLOTS):
@@ -316,11 +423,11 @@ def _cached_select(index: FtlIndex, found: int, m: int, slot_rows: int, t: float
         j = head
         k = 0
         while j >= 0 and j != stop and k < n_new:
-            o = 3 * j
+            o = 2 * links[2 * j + _L_ROW]
             nr[k] = -rows[o + _R_RATIO]  # negated: ascending sort = decreasing ratio
             nc[k] = rows[o + _R_COST]
             k += 1
-            j = rows_i[o + _R_NEXT]
+            j = links[2 * j + _L_NEXT]
         order = np.argsort(nr)
         # Merge from the end: cached rows [base, base+have) and the new ones, both by
         # decreasing ratio, into [base, base+m).
@@ -390,6 +497,8 @@ def ftl_lambda_for_spend(index: FtlIndex, target_spend: float) -> float:
         found = lowest
     if found < 0:
         return 0.0
+    if not (index.state_i[_I_BAND_LO] <= found <= index.state_i[_I_BAND_HI]):
+        _move_band(index, found)
     q = 4 * found
     first = bucket[q + _B_FIRST]
     if not np.isnan(first):
@@ -403,13 +512,13 @@ def ftl_lambda_for_spend(index: FtlIndex, target_spend: float) -> float:
     r = np.empty(m, np.float64)
     c = np.empty(m, np.float64)
     rows = index.rows
-    rows_i = index.rows_i
+    links = index.links
     j = bucket_i[q + _B_HEAD]
     k = 0
     while j >= 0 and k < m:
-        o = 3 * j
+        o = 2 * links[2 * j + _L_ROW]
         r[k] = rows[o + _R_RATIO]
         c[k] = rows[o + _R_COST]
         k += 1
-        j = rows_i[o + _R_NEXT]
+        j = links[2 * j + _L_NEXT]
     return _select_marginal(r, c, target - acc)

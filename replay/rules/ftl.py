@@ -24,6 +24,7 @@ from replay.kernels.ftl_index import (
     ftl_capacity,
     ftl_count,
     ftl_index_new,
+    ftl_index_reset,
     ftl_insert,
     ftl_lambda_for_spend,
 )
@@ -76,7 +77,13 @@ class FollowTheLeader(BidRule):
 
     def make_index(self, capacity: int):
         """A fresh index holding the training rows, room for ``capacity`` more."""
-        index = ftl_index_new(len(self.train_value_) + capacity)
+        need = len(self.train_value_) + capacity
+        index = getattr(self, "_spare_index", None)
+        if index is not None and ftl_capacity(index) >= need:
+            ftl_index_reset(index)  # same memory as the last run: no fresh pages to zero
+        else:
+            index = ftl_index_new(need)
+            self._spare_index = index
         ftl_insert(index, self.train_value_, self.train_price_)
         return index
 
