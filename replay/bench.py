@@ -275,9 +275,9 @@ def _case_hindsight_curve(cfg: BenchConfig) -> dict[str, object]:
 def _case_rule(cfg: BenchConfig, rule: str, schedule: str) -> dict[str, object]:
     from replay.bench_rules import prepare_rule_case
 
-    run, rows = prepare_rule_case(rule, cfg.rows, schedule, cfg.seed)
+    run, rows, prepare_s = prepare_rule_case(rule, cfg.rows, schedule, cfg.seed)
     seconds = _median_seconds(run, cfg.repeats)
-    return _result(rows, seconds, rule=rule, schedule=schedule)
+    return _result(rows, seconds, rule=rule, schedule=schedule, prepare_seconds=prepare_s)
 
 
 def _case_backtest_demo(cfg: BenchConfig) -> dict[str, object]:

@@ -39,8 +39,10 @@ def _schedule(name: str, n_rows: int) -> Schedule:
 
 
 def prepare_rule_case(rule_name: str, n_rows: int, schedule: str,
-                      seed: int = 0) -> tuple[Callable[[], object], int]:
-    """``(run, rows)``: a callable replaying ``n_rows`` rows once, and the row count."""
+                      seed: int = 0) -> tuple[Callable[[], object], int, float]:
+    """``(run, rows, prepare_seconds)``: a callable replaying ``n_rows`` rows once, the row
+    count, and the seconds the once-per-campaign preparation took (training-window fits,
+    win thresholds)."""
     from replay.scenario import synthetic_campaign
 
     total = int(n_rows / 0.9)
@@ -50,15 +52,16 @@ def prepare_rule_case(rule_name: str, n_rows: int, schedule: str,
     # A budget that binds: 30 % of what winning every row at its price would cost.
     spec = CampaignSpec(data.campaign_id, budget=0.3 * float(replay.min_win_price.sum()))
     params = PER_REQUEST_PARAMS.get(rule_name, {}) if schedule == "per_request" else {}
+    t0 = time.perf_counter()
     prepared = prepare_replay(replay, train, spec, make_rule(rule_name, params),
                               _schedule(schedule, len(replay)), "expected", seed)
-    return prepared.run, len(replay)
+    return prepared.run, len(replay), time.perf_counter() - t0
 
 
 def bench_rule(rule_name: str, n_rows: int = 10_000_000, schedule: str = "batch",
                seed: int = 0, repeats: int = 3) -> dict[str, float]:
     """Median seconds of one replay (after a warm-up run that compiles) and rows per second."""
-    run, rows = prepare_rule_case(rule_name, n_rows, schedule, seed)
+    run, rows, _ = prepare_rule_case(rule_name, n_rows, schedule, seed)
     run()
     times = []
     for _ in range(repeats):
