@@ -309,7 +309,10 @@ class Catalog:
             "SELECT campaign_id, epoch_us(ts) AS ts_us, value, min_win_price, charge_prob, "
             f"code AS placement_code, pricing = '{FIRST_PRICE}' AS first_price, request_id "
             f"FROM auctions JOIN __placement_codes USING (placement, pricing){where} "
-            "ORDER BY campaign_id, ts", params=params).to_arrow_table()
+            # Ties in time broken by every other column, as the Spark engine does: the
+            # order (and so a replay) never depends on how the files were read.
+            "ORDER BY campaign_id, ts, request_id, placement, pricing, value, min_win_price, "
+            "charge_prob", params=params).to_arrow_table()
 
     def _to_arrays(self, campaign_id: str, t: pa.Table) -> CampaignArrays:
         names = tuple(p for p, _ in self.placements())
