@@ -224,7 +224,10 @@ def _stage_csv(path: Path, names: list[str], out: Path) -> None:
     try:
         stream = pa.input_stream(str(path), compression="detect")
         reader = pacsv.open_csv(stream, read_options=opts_read, convert_options=opts_conv)
-        with pq.ParquetWriter(out, reader.schema, compression="snappy") as writer:
+        # A scratch file read once per pass: dictionary pages (a third of the staging
+        # time) would only shrink it.
+        with pq.ParquetWriter(out, reader.schema, compression="snappy",
+                              use_dictionary=False) as writer:
             for batch in reader:
                 writer.write_batch(batch)
     except pa.ArrowException as exc:
@@ -235,7 +238,8 @@ def _stage_arrow(path: Path, out: Path) -> None:
     """Arrow IPC (file or stream) -> Parquet, batch by batch."""
     try:
         reader = _open_ipc(path)
-        with pq.ParquetWriter(out, reader.schema, compression="snappy") as writer:
+        with pq.ParquetWriter(out, reader.schema, compression="snappy",
+                              use_dictionary=False) as writer:
             if isinstance(reader, pa.ipc.RecordBatchFileReader):
                 for i in range(reader.num_record_batches):
                     writer.write_batch(reader.get_batch(i))
@@ -369,18 +373,24 @@ def _group_view_sql(g: _Group) -> tuple[str, str]:
     ex = _typed_exprs(g.origin, g.schema)
     files = "[" + ", ".join(_lit(p) for p in g.scan_paths) + "]"
     scan = f"read_parquet({files}, filename='__file', file_row_number=true)"
-    charge = f"coalesce({ex['charge_prob']}, {float(_OPTIONAL_DEFAULTS['charge_prob'])!r})"
+    # Each typed value is computed once, in the inner select, and the checks read the
+    # result: inlined, DuckDB would parse a string column once per check (the checks are
+    # CASE branches, out of reach of its common-subexpression elimination), which made
+    # every pass over a CSV about five times slower.
+    once = ("ts", "ts_missing", "campaign_id", "placement", "pricing", "value",
+            "min_win_price", "request_id", "charge_prob", "charge_prob_missing")
+    inner = ", ".join(f"({ex[k]}) AS __{k}" for k in once)
+    checks = _reason_case({k: f"__{k}" for k in once})
+    default = float(_OPTIONAL_DEFAULTS["charge_prob"])
     base = (
-        f"SELECT *, {_reason_case(ex)} AS __reason, ({ex['ts']}) AS __ts, "
-        f"({ex['campaign_id']}) AS __campaign_id, ({ex['placement']}) AS __placement, "
-        f"({ex['pricing']}) AS __pricing, ({ex['value']}) AS __value, "
-        f"({ex['min_win_price']}) AS __min_win_price, ({ex['request_id']}) AS __request_id, "
-        f"{charge} AS __charge_prob FROM {scan}"
+        f"SELECT *, {checks} AS __reason, coalesce(__charge_prob, {default!r}) "
+        f"AS __charge_prob_or_default FROM (SELECT *, {inner} FROM {scan})"
     )
     typed = (
         "SELECT __ts AS ts, __campaign_id AS campaign_id, __placement AS placement, "
         "__pricing AS pricing, __value AS value, __min_win_price AS min_win_price, "
-        "__request_id AS request_id, __charge_prob AS charge_prob, __reason AS reason, "
+        "__request_id AS request_id, __charge_prob_or_default AS charge_prob, "
+        "__reason AS reason, "
         f"__file, file_row_number FROM ({base})"
     )
     raw_cols = ", ".join(f"CAST({_q(n)} AS VARCHAR) AS {_q(n)}" for n in g.schema.names)
@@ -591,8 +601,11 @@ def _connect(tmp: Path) -> duckdb.DuckDBPyConnection:
     con = connect_duckdb()
     con.execute(f"SET temp_directory = {_lit(str(tmp / 'duckdb_tmp'))}")
     # DuckDB folds isnan() to false from Parquet min/max statistics, which never count
-    # NaN; without this NaN values would pass the checks.
-    con.execute("SET disabled_optimizers = 'statistics_propagation'")
+    # NaN; without this NaN values would pass the checks. Filter pushdown would move
+    # "reason IS NULL" below the select that parses each value once and inline the
+    # parsing into every check again (about 3x slower passes over CSV input); every
+    # query here reads whole files anyway.
+    con.execute("SET disabled_optimizers = 'statistics_propagation,filter_pushdown'")
     return con
 
 
@@ -697,18 +710,22 @@ def _ingest_files(new: list[tuple[Path, str, list[str], str]], catalog: Path, tm
 
 
 def _repeated_hashes(con: duckdb.DuckDBPyConnection) -> pa.Array:
-    """Hashes of (campaign_id, request_id) that occur more than once among the valid rows.
+    """Hashes of (campaign_id, request_id) that occur more than once among the valid rows."""
+    col = con.sql("SELECT hash(campaign_id, request_id) AS __h FROM v "
+                  "WHERE reason IS NULL AND request_id IS NOT NULL").to_arrow_table().column(0)
+    return _repeated(col.chunks)
+
+
+def _repeated(chunks: Sequence[pa.Array | np.ndarray]) -> pa.Array:
+    """The uint64 values occurring more than once in ``chunks``, sorted and unique.
 
     Sorting the 8-byte hashes in numpy and comparing neighbours is about twice as fast as
     DuckDB's hash aggregate over every key (the usual input has no duplicate at all);
-    memory is 16 bytes per row with a request_id, for the duration of this call.
+    memory is 16 bytes per hash, for the duration of this call.
     """
-    col = con.sql("SELECT hash(campaign_id, request_id) AS __h FROM v "
-                  "WHERE reason IS NULL AND request_id IS NOT NULL").to_arrow_table().column(0)
-    hashes = col.to_numpy()  # one contiguous copy of the chunks, so sorting it in place is ours
-    del col
-    if not hashes.flags.writeable:
-        hashes = hashes.copy()
+    if not chunks:
+        return pa.array([], pa.uint64())
+    hashes = np.concatenate([np.asarray(c, dtype=np.uint64) for c in chunks])
     hashes.sort()
     repeated = hashes[1:][hashes[1:] == hashes[:-1]]
     return pa.array(np.unique(repeated), pa.uint64())
@@ -843,14 +860,17 @@ def _catalog_order_breaks(batch: pa.RecordBatch, last: tuple | None) -> bool:
 
 
 def _write_accepted(con: duckdb.DuckDBPyConnection, query: str, out_dir: Path,
-                    file_name: str, check_order: bool = False) -> bool:
+                    file_name: str, check_order: bool = False) -> list[np.ndarray] | None:
     """Stream ``query`` (rows in (date, campaign, ts) order) into hive partitions.
 
+    A ``__h`` column of the query (hash of campaign_id and request_id, NULL without a
+    request_id) is not written: its non-null values are returned, one array per batch.
     With ``check_order`` the rows are checked on the way; the first row out of order stops
-    the writing, removes what was written and returns False.
+    the writing, removes what was written and returns None.
     """
     writer = _PartitionWriter(out_dir, file_name)
     reader = con.sql(query).to_arrow_reader(ROW_GROUP_ROWS)
+    hashes: list[np.ndarray] = []
     last: tuple | None = None
     try:
         for batch in reader:
@@ -863,19 +883,23 @@ def _write_accepted(con: duckdb.DuckDBPyConnection, query: str, out_dir: Path,
                 last = (tail.column(PARTITION_COLUMN).cast(pa.int32())[0].as_py(),
                         tail.column("campaign_id")[0].as_py(),
                         tail.column("ts").cast(pa.int64())[0].as_py())
+            if "__h" in batch.schema.names:
+                h = batch.column("__h")
+                hashes.append((h.drop_null() if h.null_count else h).to_numpy())
+                batch = batch.drop_columns(["__h"])
             writer.write(batch)
     except _OutOfOrder:
         reader.close()
         writer.close()
         shutil.rmtree(out_dir, ignore_errors=True)
-        return False
+        return None
     except BaseException:
         reader.close()
         with contextlib.suppress(Exception):  # the first error is the one to report
             writer.close()
         raise
     writer.close()
-    return True
+    return hashes
 
 
 def _run_sql(con: duckdb.DuckDBPyConnection, groups: list[_Group], scan_of: dict[str, Path],
@@ -905,10 +929,33 @@ def _run_sql(con: duckdb.DuckDBPyConnection, groups: list[_Group], scan_of: dict
     rows_read = sum(per_file.values())
     valid = rows_read - sum(rejected.values())
 
-    step("finding duplicates")
     existing = sorted((catalog / AUCTIONS_DIR).glob("*/*.parquet"))
+    out_auctions = tmp / AUCTIONS_DIR
+    cols = ", ".join(c.name for c in AUCTION_COLUMNS)
+    select = (f"SELECT {cols}, CAST(ts AS DATE) AS {PARTITION_COLUMN} FROM "
+              "(SELECT * FROM v WHERE reason IS NULL)")
+    name = f"part-{ingest_id}-0.parquet"
+    # Logs are often already in catalog order (one campaign per file, in time order) and
+    # hold no duplicate: then one pass writes them as they come, with the hashes of the
+    # request keys streamed along and checked afterwards. That saves the sort (the
+    # costliest step) and the duplicate pass. The first row out of order, or any repeated
+    # hash, discards what was written and falls back to the general path below.
+    in_order: bool | None = None  # None: not tried
+    written = False
+    if valid and SPECULATE_ORDER and not existing:
+        step("writing accepted rows")
+        hashes = _write_accepted(
+            con, f"SELECT {cols}, CAST(ts AS DATE) AS {PARTITION_COLUMN}, CASE WHEN "
+            "request_id IS NOT NULL THEN hash(campaign_id, request_id) END AS __h "
+            "FROM (SELECT * FROM v WHERE reason IS NULL)", out_auctions, name, check_order=True)
+        in_order = hashes is not None
+        written = in_order and not len(_repeated(hashes))
+        if in_order and not written:
+            shutil.rmtree(out_auctions, ignore_errors=True)
+
     n_losers = 0
-    if valid:
+    if valid and not written:
+        step("finding duplicates")
         # Integer hashes make the full pass cheap; a hash collision only adds rows to the
         # ranking below, which partitions by the real key, so the result stays exact.
         dup_hashes = _repeated_hashes(con)
@@ -937,27 +984,21 @@ def _run_sql(con: duckdb.DuckDBPyConnection, groups: list[_Group], scan_of: dict
         rejected[str(RejectReason.DUPLICATE_REQUEST)] = n_losers
     accepted_expected = valid - n_losers
 
-    out_auctions = tmp / AUCTIONS_DIR
-    step("writing accepted rows")
-    if accepted_expected:
-        anti = " ANTI JOIN losers USING (__file, file_row_number)" if n_losers else ""
-        cols = ", ".join(c.name for c in AUCTION_COLUMNS)
+    if accepted_expected and not written:
+        step("writing accepted rows")
+        if n_losers:
+            select += " ANTI JOIN losers USING (__file, file_row_number)"
         # Sorted by campaign then time, so row-group statistics let per-campaign reads skip
         # most of a partition (about 15x faster reads measured on 20M rows). Integer sort
         # keys (campaign rank, epoch microseconds) sort about twice as fast as strings.
+        # DuckDB sorts (out of core when needed); pyarrow writes, which is about twice as
+        # fast as DuckDB's COPY here because only the categorical columns get dictionaries.
         con.register("__ranks", pa.table({
             "campaign_id": sorted(valid_campaigns),
             "__rank": pa.array(range(len(valid_campaigns)), pa.int32())}))
-        # DuckDB sorts (out of core when needed); pyarrow writes, which is about twice as
-        # fast as DuckDB's COPY here because only the categorical columns get dictionaries.
-        # Logs are often already in that order (one campaign per file, in time order):
-        # streaming them unsorted and checking the order on the way saves the sort, the
-        # costliest step; the first row out of order falls back to the sort.
-        select = (f"SELECT {cols}, CAST(ts AS DATE) AS {PARTITION_COLUMN} FROM "
-                  f"(SELECT * FROM v WHERE reason IS NULL){anti}")
-        name = f"part-{ingest_id}-0.parquet"
-        if not (SPECULATE_ORDER and _write_accepted(con, select, out_auctions, name,
-                                                    check_order=True)):
+        if not ((in_order or (in_order is None and SPECULATE_ORDER))
+                and _write_accepted(con, select, out_auctions, name, check_order=True)
+                is not None):
             _write_accepted(con, f"{select} JOIN __ranks USING (campaign_id) ORDER BY "
                             f"{PARTITION_COLUMN}, __rank, epoch_us(ts)", out_auctions, name)
 

@@ -344,6 +344,20 @@ def _rows_in_window(catalog: Any, ids: Sequence[str], start_us: int, end_us: int
     return int(cur.fetchall()[0][0])
 
 
+def _check_replay_options(every: str | None, every_n: int | None, charges: str,
+                          shading: str) -> tuple[int | None, int | None, str | None, str]:
+    """Validate the schedule (``every_n`` replaces ``every`` when given), charges and
+    shading model; ``(every_us, every_n, every_text, charges)``."""
+    if every_n is not None:
+        every = None
+    every_us, every_n = check_schedule(every, every_n)
+    every_text = None if every_us is None else format_duration(every_us)
+    charges = check_charges(charges)
+    if shading not in SHADING_MODELS:
+        raise UsageError(f"--shading {shading!r}: allowed: {'|'.join(SHADING_MODELS)}")
+    return every_us, every_n, every_text, charges
+
+
 def _resolve_workers(workers: int | None, n_tasks: int) -> int:
     if workers is None or workers == 0:
         workers = os.cpu_count() or 1
@@ -378,13 +392,8 @@ def backtest(catalog: Any, rule: Any, params: Mapping[str, Any] | None = None, *
     cat = catalog if isinstance(catalog, Catalog) else Catalog(catalog)
     rule_cls = _rule_class(rule)
     base_params = {k: _convert(rule_cls, k, v) for k, v in dict(params or {}).items()}
-    if every_n is not None:
-        every = None
-    every_us, every_n = check_schedule(every, every_n)
-    every_text = None if every_us is None else format_duration(every_us)
-    charges = check_charges(charges)
-    if shading not in SHADING_MODELS:
-        raise UsageError(f"--shading {shading!r}: allowed: {'|'.join(SHADING_MODELS)}")
+    every_us, every_n, every_text, charges = _check_replay_options(every, every_n, charges,
+                                                                   shading)
     if isinstance(budget_scale, bool) or not isinstance(budget_scale, int | float) or \
             not math.isfinite(budget_scale) or budget_scale <= 0:
         raise UsageError(f"--budget-scale {budget_scale!r}: must be a number > 0 (multiplies "
@@ -656,13 +665,8 @@ def whatif(catalog: Any, campaign_id: str, *, budget: float | None = None,
         raise UsageError(f"--exclude-placement {unknown[0]!r}: unknown placement; allowed: "
                          f"{', '.join(sorted(set(names)))}")
     drop = np.array([i for i, p in enumerate(names) if p in set(exclude_placements)], np.int32)
-    if every_n is not None:
-        every = None
-    every_us, every_n = check_schedule(every, every_n)
-    every_text = None if every_us is None else format_duration(every_us)
-    charges = check_charges(charges)
-    if shading not in SHADING_MODELS:
-        raise UsageError(f"--shading {shading!r}: allowed: {'|'.join(SHADING_MODELS)}")
+    every_us, every_n, every_text, charges = _check_replay_options(every, every_n, charges,
+                                                                   shading)
 
     windows = compute_windows(cat.time_span_us(), start=start, end=end, train_days=train_days,
                               train_start=train_start, train_end=train_end)

@@ -1,0 +1,147 @@
+"""Ingest's in-order path (rows written as they come, no duplicate pass) against the sorted
+path: same accepted rows per partition, same rejected rows, same counts, and the catalog
+layout (catalog order within each file, full row groups) holds on both.
+
+Expected duplicate counts come from how each input is built, not from the code under test.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+import replay.ingest as ingest_mod
+from replay.ingest import ingest
+
+T0 = 1_772_409_600_000_000  # 2026-03-02T00:00:00Z, microseconds
+SMALL_ROW_GROUP = 64  # rows; small so that files hold several row groups and a remainder
+
+
+DAY_US = 86_400_000_000
+
+
+def _log(n: int, campaigns: int, in_order: bool, duplicates: int, seed: int) -> pa.Table:
+    """``n`` rows over three days; ``in_order``: sorted by (date, campaign, ts).
+
+    The last ``duplicates`` rows repeat (campaign_id, request_id) of rows from the middle
+    with the latest timestamps, so each of them is a row that loses.
+    """
+    rng = np.random.default_rng(seed)
+    ts = T0 + rng.integers(0, 3 * DAY_US - 1_000, n)
+    cid = rng.integers(0, campaigns, n)
+    rid = np.array([f"r{i}" for i in range(n)], dtype=object)
+    for k in range(duplicates):
+        donor, copy = n // 2 + k, n - duplicates + k
+        cid[copy], rid[copy], ts[copy] = cid[donor], rid[donor], T0 + 3 * DAY_US - 1 - k
+    rid[: n // 50] = None  # rows without request_id are never duplicates
+    value = rng.random(n) * 0.02
+    value[n // 3] = np.nan  # one rejected row
+    order = np.lexsort((ts, cid, ts // DAY_US)) if in_order else np.arange(n)
+    return pa.table({
+        "ts": pa.array(ts[order], pa.timestamp("us", tz="UTC")),
+        "campaign_id": pa.array([f"c{c}" for c in cid[order]]),
+        "placement": pa.array(rng.choice(["feed", "app"], n)),
+        "pricing": pa.array(rng.choice(["first_price", "second_price"], n)),
+        "value": value[order],
+        "min_win_price": rng.random(n) * 0.003,
+        "request_id": pa.array(rid[order], pa.string()),
+        "charge_prob": np.ones(n),
+    })
+
+
+def _catalog_state(cat: Path) -> dict:
+    state: dict = {}
+    for f in sorted((cat / "auctions").glob("*/*.parquet")):
+        t = pq.read_table(f)
+        cid = t.column("campaign_id").to_pylist()
+        ts = t.column("ts").cast(pa.int64()).to_pylist()
+        keys = list(zip(cid, ts, strict=True))
+        assert keys == sorted(keys), f"{f}: not in (campaign_id, ts) order"
+        meta = pq.ParquetFile(f).metadata
+        sizes = [meta.row_group(i).num_rows for i in range(meta.num_row_groups)]
+        assert all(s == SMALL_ROW_GROUP for s in sizes[:-1]), sizes
+        assert 0 < sizes[-1] <= SMALL_ROW_GROUP
+        rows = [tuple(r.values()) for r in t.to_pylist()]
+        state[f.parent.name] = sorted(rows, key=repr)
+    rejected = sorted((cat / "_rejected").glob("*.parquet"))
+    state["rejected"] = [pq.read_table(f).to_pylist() for f in rejected]
+    return state
+
+
+CASES = {
+    # (campaigns, in_order, duplicates)
+    "in_order_no_duplicates": (1, True, 0),
+    "in_order_several_campaigns": (3, True, 0),
+    "in_order_with_duplicates": (1, True, 5),
+    "out_of_order": (3, False, 0),
+    "out_of_order_with_duplicates": (3, False, 4),
+}
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_in_order_path_matches_sorted_path(tmp_path: Path, monkeypatch, case: str) -> None:
+    campaigns, in_order, duplicates = CASES[case]
+    table = _log(3_000, campaigns, in_order, duplicates, seed=len(case))
+    src = tmp_path / "log.parquet"
+    pq.write_table(table, src)
+    monkeypatch.setattr(ingest_mod, "ROW_GROUP_ROWS", SMALL_ROW_GROUP)
+    queries: list[str] = []
+    real_write = ingest_mod._write_accepted
+
+    def spy(con, query, *args, **kwargs):
+        queries.append(query)
+        return real_write(con, query, *args, **kwargs)
+
+    monkeypatch.setattr(ingest_mod, "_write_accepted", spy)
+    results = {}
+    for speculate in (True, False):
+        monkeypatch.setattr(ingest_mod, "SPECULATE_ORDER", speculate)
+        queries.clear()
+        cat = tmp_path / f"cat_{speculate}"
+        report = ingest([src], cat)
+        results[speculate] = (report, _catalog_state(cat), list(queries))
+
+    fast, slow = results[True], results[False]
+    assert fast[1] == slow[1]
+    for attr in ("rows_read", "accepted", "rejected", "campaign_ids", "first_ts", "last_ts"):
+        assert getattr(fast[0], attr) == getattr(slow[0], attr), attr
+    assert fast[0].rows_read == 3_000
+    assert fast[0].rejected.get("duplicate_request", 0) == duplicates
+    assert fast[0].rejected.get("nan_value") == 1
+    # The sorted path sorts once; the in-order path writes once when it can.
+    assert len(slow[2]) == 1 and "ORDER BY" in slow[2][0]
+    if in_order and not duplicates:
+        assert len(fast[2]) == 1 and "ORDER BY" not in fast[2][0]
+    else:
+        assert len(fast[2]) >= 2
+
+
+def test_in_order_path_into_existing_catalog(tmp_path: Path, monkeypatch) -> None:
+    """Rows already in the catalog are duplicates for the next ingest, on both paths."""
+    monkeypatch.setattr(ingest_mod, "ROW_GROUP_ROWS", SMALL_ROW_GROUP)
+    table = _log(1_000, 1, True, 0, seed=7)
+    pq.write_table(table.slice(0, 600), tmp_path / "day1.parquet")
+    pq.write_table(table.slice(400), tmp_path / "day2.parquet")  # 200 rows overlap
+    states = []
+    for speculate in (True, False):
+        monkeypatch.setattr(ingest_mod, "SPECULATE_ORDER", speculate)
+        cat = tmp_path / f"cat_{speculate}"
+        ingest([tmp_path / "day1.parquet"], cat)
+        report = ingest([tmp_path / "day2.parquet"], cat)
+        overlap_with_ids = sum(r is not None for r in
+                               table.slice(400, 200).column("request_id").to_pylist())
+        assert report.rejected.get("duplicate_request") == overlap_with_ids
+        states.append(sorted(pq.read_table(cat / "auctions").drop_columns(["date"])
+                             .to_pylist(), key=repr))
+    assert states[0] == states[1]
+
+
+def test_repeated_hashes_exact() -> None:
+    chunks = [np.array([5, 1, 9], np.uint64), pa.array([9, 2, 5, 5], pa.uint64())]
+    assert ingest_mod._repeated(chunks).to_pylist() == [5, 9]
+    assert ingest_mod._repeated([]).to_pylist() == []
+    assert ingest_mod._repeated([np.arange(10, dtype=np.uint64)]).to_pylist() == []
