@@ -21,17 +21,6 @@ P_STEP, P_L0, P_REALIZED, P_CAP, P_CAP_STEP = range(5)
 
 
 @njit(cache=True, nogil=True)
-def cap_multiplier_step(state, params, spend, results, norm):
-    """The cost-per-result cap's multiplier ``mu`` (results per currency): an additive
-    step on the interval's cap violation ``(spend - C * results) / norm``, kept >= 0.
-    Shared by every pacing rule (no-op without a cap)."""
-    if params[P_CAP] > 0.0:
-        viol = (spend - params[P_CAP] * results) / norm
-        state[rl.STATE_MU] = max(0.0, state[rl.STATE_MU]
-                                 + params[P_CAP_STEP] * params[P_L0] * viol)
-
-
-@njit(cache=True, nogil=True)
 def dual_gradient_update(state, params, fb):
     if fb[rl.FB_EXHAUSTED] > 0.0:
         return
@@ -39,7 +28,10 @@ def dual_gradient_update(state, params, fb):
     norm = fb[rl.FB_NORM]
     gap = (fb[rl.FB_TARGET] - s) / norm
     state[rl.STATE_LAMBDA] = max(0.0, state[rl.STATE_LAMBDA] - params[P_STEP] * params[P_L0] * gap)
-    cap_multiplier_step(state, params, s, fb[rl.FB_RESULTS], norm)
+    if params[P_CAP] > 0.0:
+        viol = (s - params[P_CAP] * fb[rl.FB_RESULTS]) / norm
+        state[rl.STATE_MU] = max(0.0, state[rl.STATE_MU]
+                                 + params[P_CAP_STEP] * params[P_L0] * viol)
 
 
 class PacingRule(BidRule):

@@ -14,7 +14,7 @@ from numba import njit
 
 from replay.kernels import replay_loop as rl
 from replay.rules.base import POSITIVE, Param
-from replay.rules.dual_gradient import P_REALIZED, P_STEP, PacingRule, cap_multiplier_step
+from replay.rules.dual_gradient import P_CAP, P_CAP_STEP, P_L0, P_REALIZED, P_STEP, PacingRule
 
 
 @njit(cache=True, nogil=True)
@@ -26,7 +26,12 @@ def dual_mirror_update(state, params, fb):
     x = -params[P_STEP] * (fb[rl.FB_TARGET] - s) / norm
     x = min(max(x, -30.0), 30.0)
     state[rl.STATE_LAMBDA] = state[rl.STATE_LAMBDA] * math.exp(x)
-    cap_multiplier_step(state, params, s, fb[rl.FB_RESULTS], norm)
+    # The cap step is written out in each rule on purpose: a call to a shared @njit helper
+    # taking the arrays cost ~20 ns per update, 40 % of a per-request replay (measured).
+    if params[P_CAP] > 0.0:
+        viol = (s - params[P_CAP] * fb[rl.FB_RESULTS]) / norm
+        state[rl.STATE_MU] = max(0.0, state[rl.STATE_MU]
+                                 + params[P_CAP_STEP] * params[P_L0] * viol)
 
 
 class DualMirror(PacingRule):

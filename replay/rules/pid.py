@@ -16,7 +16,7 @@ from numba import njit
 
 from replay.kernels import replay_loop as rl
 from replay.rules.base import NON_NEGATIVE, Param
-from replay.rules.dual_gradient import P_CAP_STEP, P_REALIZED, PacingRule, cap_multiplier_step
+from replay.rules.dual_gradient import P_CAP, P_CAP_STEP, P_L0, P_REALIZED, PacingRule
 
 P_KP, P_KI, P_KD, P_LSTART = 5, 6, 7, 8
 S_INTEGRAL, S_PREV = 3, 4
@@ -38,8 +38,11 @@ def pid_update(state, params, fb):
     x = -(params[P_KP] * e + params[P_KI] * state[S_INTEGRAL] + params[P_KD] * d)
     x = min(max(x, -30.0), 30.0)
     state[rl.STATE_LAMBDA] = params[P_LSTART] * math.exp(x)
-    s = fb[rl.FB_SPEND] if realized else fb[rl.FB_EXPECTED_SPEND]
-    cap_multiplier_step(state, params, s, fb[rl.FB_RESULTS], norm)
+    if params[P_CAP] > 0.0:
+        s = fb[rl.FB_SPEND] if realized else fb[rl.FB_EXPECTED_SPEND]
+        viol = (s - params[P_CAP] * fb[rl.FB_RESULTS]) / norm
+        state[rl.STATE_MU] = max(0.0, state[rl.STATE_MU]
+                                 + params[P_CAP_STEP] * params[P_L0] * viol)
 
 
 class Pid(PacingRule):
