@@ -279,8 +279,11 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
                   tab["first_price"], tab["max_logged_price"],
                   *rl.build_shade_accel(tab["offsets"], tab["knots_w"], tab["linear"],
                                         tab["first_price"]))
-    fast, need, above_w = rl.win_thresholds(price, plc, fp, shade_on, *shade_args[:6])
-    fast = bool(fast and thresholds)
+    if thresholds:
+        fast, need, above_w = rl.win_thresholds(price, plc, fp, shade_on, *shade_args[:6])
+        fast = bool(fast)
+    else:  # the per-row shading loop reads neither array
+        fast, need, above_w = False, np.zeros(0), np.zeros(0)
     auctions_per_placement = (np.bincount(plc, minlength=len(placements))[:len(placements)]
                               if len(rows) else np.zeros(len(placements), np.int64))
 
