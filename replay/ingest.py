@@ -735,6 +735,10 @@ def _repeated(chunks: Sequence[pa.Array | np.ndarray]) -> pa.Array:
 #: off to compare with the sorted path.
 SPECULATE_ORDER = True
 
+#: Parquet codec of the accepted files. lz4 writes about 0.1 s faster per 5M rows but
+#: makes the files 40 % larger (126 MB against 90 MB); reads outlive one ingest.
+ACCEPTED_CODEC = "zstd"
+
 #: Rows per Parquet row group of the accepted files (DuckDB's default, and its vector
 #: multiple): small enough that per-campaign reads skip most of a partition.
 ROW_GROUP_ROWS = 122_880
@@ -743,6 +747,11 @@ ROW_GROUP_ROWS = 122_880
 #: timestamps, prices and request ids are almost all unique values, cost about half of the
 #: writing time and are then thrown away, so those columns are written plain.
 _DICTIONARY_COLUMNS = ("campaign_id", "placement", "pricing")
+
+#: Columns whose row-group min/max statistics are written: the only ones catalog and Spark
+#: reads filter on. Statistics of the other string columns cost about a sixth of the
+#: writing time (a string comparison per value) and no query could use them.
+_STATISTICS_COLUMNS = ("ts", "campaign_id")
 
 #: Schema of the accepted files: every field nullable, as DuckDB wrote them before, so files
 #: of old and new ingests read as one dataset.
@@ -784,8 +793,9 @@ class _PartitionWriter:
 
     def _open(self, path: Path) -> None:
         path.parent.mkdir(parents=True, exist_ok=True)
-        self.writer = pq.ParquetWriter(path, _ACCEPTED_SCHEMA, compression="zstd",
-                                       use_dictionary=list(_DICTIONARY_COLUMNS))
+        self.writer = pq.ParquetWriter(path, _ACCEPTED_SCHEMA, compression=ACCEPTED_CODEC,
+                                       use_dictionary=list(_DICTIONARY_COLUMNS),
+                                       write_statistics=list(_STATISTICS_COLUMNS))
 
     def _write_table(self, table: pa.Table) -> None:
         self.writer.write_table(table, row_group_size=ROW_GROUP_ROWS)
@@ -854,9 +864,14 @@ def _catalog_order_breaks(batch: pa.RecordBatch, last: tuple | None) -> bool:
         return True
     same_day = step_day == 0
     prev, nxt = cid.slice(0, len(cid) - 1), cid.slice(1)
+    ts_back = ts[1:] < ts[:-1]
+    if cid[0] == cid[-1] and pc.all(pc.equal(nxt, prev)).as_py():
+        # The usual batch holds one campaign: only time can go back. The string
+        # comparisons below were most of this check's time.
+        return bool((same_day & ts_back).any())
     back = pc.less(nxt, prev).to_numpy(zero_copy_only=False)
     same = pc.equal(nxt, prev).to_numpy(zero_copy_only=False)
-    return bool((same_day & (back | (same & (ts[1:] < ts[:-1])))).any())
+    return bool((same_day & (back | (same & ts_back))).any())
 
 
 def _write_accepted(con: duckdb.DuckDBPyConnection, query: str, out_dir: Path,
@@ -1029,15 +1044,18 @@ def _run_sql(con: duckdb.DuckDBPyConnection, groups: list[_Group], scan_of: dict
     summary = {"n": 0, "first": None, "last": None, "campaign_rows": {}, "placements": []}
     if written:
         glob_new = _lit(str(out_auctions / "*" / "*.parquet"))
-        n, first, last = con.execute(
-            f"SELECT count(*), min(ts), max(ts) FROM read_parquet({glob_new})").fetchall()[0]
-        summary.update(n=n, first=first, last=last)
-        summary["campaign_rows"] = dict(con.execute(
-            f"SELECT campaign_id, count(*) FROM read_parquet({glob_new}) GROUP BY 1 ORDER BY 1"
-        ).fetchall())
-        summary["placements"] = [list(r) for r in con.execute(
-            f"SELECT DISTINCT placement, pricing FROM read_parquet({glob_new}) ORDER BY 1, 2"
-        ).fetchall()]
+        # One pass over the written files, not one per number: (campaign, placement,
+        # pricing) cells are few.
+        cells = con.execute(
+            f"SELECT campaign_id, placement, pricing, count(*), min(ts), max(ts) "
+            f"FROM read_parquet({glob_new}) GROUP BY ALL").fetchall()
+        campaign_rows: dict[str, int] = {}
+        for cid, _placement, _pricing, n, _first, _last in cells:
+            campaign_rows[cid] = campaign_rows.get(cid, 0) + n
+        summary.update(n=sum(g[3] for g in cells), first=min(g[4] for g in cells),
+                       last=max(g[5] for g in cells),
+                       campaign_rows=dict(sorted(campaign_rows.items())),
+                       placements=[list(p) for p in sorted({(g[1], g[2]) for g in cells})])
     if summary["n"] != accepted_expected:
         raise RuntimeError(f"internal error: wrote {summary['n']} accepted rows, expected "
                            f"{accepted_expected}; the catalog was left unchanged")

@@ -7,10 +7,12 @@ Expected duplicate counts come from how each input is built, not from the code u
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import pytest
 
@@ -145,3 +147,59 @@ def test_repeated_hashes_exact() -> None:
     assert ingest_mod._repeated(chunks).to_pylist() == [5, 9]
     assert ingest_mod._repeated([]).to_pylist() == []
     assert ingest_mod._repeated([np.arange(10, dtype=np.uint64)]).to_pylist() == []
+
+
+def _order_batch(cids: list[str], ts: list[int], days: list[int]) -> pa.RecordBatch:
+    return pa.record_batch({
+        "ts": pa.array(ts, pa.int64()).cast(pa.timestamp("us", tz="UTC")),
+        "campaign_id": pa.array(cids),
+        "date": pa.array(days, pa.int32()).cast(pa.date32()),
+    })
+
+
+@pytest.mark.parametrize(("cids", "ts", "days", "breaks"), [
+    (["a", "a", "a"], [1, 2, 2], [0, 0, 0], False),  # one campaign, ties in time
+    (["a", "a", "a"], [1, 3, 2], [0, 0, 0], True),  # one campaign, time goes back
+    (["a", "b", "a"], [1, 2, 3], [0, 0, 0], True),  # same first and last campaign, b between
+    (["a", "b", "b"], [5, 1, 2], [0, 0, 0], False),  # new campaign restarts the time
+    (["b", "a"], [1, 2], [0, 0], True),  # campaign goes back
+    (["b", "a"], [1, 2], [0, 1], False),  # ... on a new day
+    (["a", "a"], [2, 1], [0, 1], False),
+])
+def test_catalog_order_check(cids: list[str], ts: list[int], days: list[int],
+                             breaks: bool) -> None:
+    assert ingest_mod._catalog_order_breaks(_order_batch(cids, ts, days), None) is breaks
+
+
+def test_order_check_against_previous_batch() -> None:
+    batch = _order_batch(["a", "a"], [5, 6], [0, 0])
+    assert ingest_mod._catalog_order_breaks(batch, (0, "a", 5)) is False
+    assert ingest_mod._catalog_order_breaks(batch, (0, "a", 7)) is True
+    assert ingest_mod._catalog_order_breaks(batch, (0, "b", 1)) is True
+
+
+def test_in_order_summary_and_statistics(tmp_path: Path, monkeypatch) -> None:
+    monkeypatch.setattr(ingest_mod, "ROW_GROUP_ROWS", SMALL_ROW_GROUP)
+    table = _log(3_000, campaigns=4, in_order=True, duplicates=0, seed=7)
+    pq.write_table(table, tmp_path / "log.parquet")
+    report = ingest([tmp_path / "log.parquet"], tmp_path / "cat")
+    good = table.filter(pc.invert(pc.is_nan(table.column("value"))))
+    assert report.accepted == good.num_rows == report.rows_read - 1
+    counts = {r["values"]: r["counts"] for r in good.column("campaign_id").value_counts()
+              .to_pylist()}
+    meta = json.loads((tmp_path / "cat" / "catalog.json").read_text())
+    assert meta["campaign_rows"] == dict(sorted(counts.items()))
+    assert report.campaign_ids == sorted(counts)
+    pairs = sorted(set(zip(good.column("placement").to_pylist(),
+                           good.column("pricing").to_pylist(), strict=True)))
+    assert meta["placements"] == [list(p) for p in pairs]
+    assert report.first_ts == pc.min(good.column("ts")).as_py()
+    assert report.last_ts == pc.max(good.column("ts")).as_py()
+    for f in (tmp_path / "cat" / "auctions").glob("*/*.parquet"):
+        md = pq.ParquetFile(f).metadata
+        assert md.num_row_groups > 1
+        names = [md.schema.column(i).name for i in range(md.num_columns)]
+        rg = md.row_group(0)
+        with_stats = {names[i] for i in range(md.num_columns)
+                      if rg.column(i).is_stats_set and rg.column(i).statistics.has_min_max}
+        assert with_stats == set(ingest_mod._STATISTICS_COLUMNS)
