@@ -865,12 +865,13 @@ def _catalog_order_breaks(batch: pa.RecordBatch, last: tuple | None) -> bool:
     same_day = step_day == 0
     prev, nxt = cid.slice(0, len(cid) - 1), cid.slice(1)
     ts_back = ts[1:] < ts[:-1]
-    if cid[0] == cid[-1] and pc.all(pc.equal(nxt, prev)).as_py():
-        # The usual batch holds one campaign: only time can go back. The string
-        # comparisons below were most of this check's time.
+    same = pc.equal(nxt, prev)
+    if pc.all(same).as_py():
+        # The usual batch holds one campaign: only time can go back, and the ordering
+        # comparison of the strings (most of this check's time) is not needed.
         return bool((same_day & ts_back).any())
     back = pc.less(nxt, prev).to_numpy(zero_copy_only=False)
-    same = pc.equal(nxt, prev).to_numpy(zero_copy_only=False)
+    same = same.to_numpy(zero_copy_only=False)
     return bool((same_day & (back | (same & ts_back))).any())
 
 
