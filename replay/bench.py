@@ -353,17 +353,95 @@ def _in_child(names: list[str], cfg: BenchConfig) -> dict[str, dict[str, object]
         return pool.submit(_run_cases, names, cfg).result()
 
 
+def _cpu_model() -> str:
+    """The processor's model name (Linux: /proc/cpuinfo), else the platform's word for it:
+    rates differ several-fold between CPU models, so a saved run should say which one."""
+    with contextlib.suppress(OSError):
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                return line.split(":", 1)[1].strip()
+    return platform.processor() or platform.machine()
+
+
 def machine_info() -> dict[str, object]:
     import numba
 
     return {
         "cpus": os.cpu_count(),
+        "cpu_model": _cpu_model(),
         "platform": platform.platform(),
         "processor": platform.machine(),
         "python": platform.python_version(),
         "numpy": np.__version__,
         "numba": numba.__version__,
     }
+
+
+@dataclass(frozen=True)
+class Target:
+    """A speed or memory goal the project set itself, checked against one bench value."""
+
+    name: str
+    goal: str  # as written in the table
+    unit: str  # of ``measured``
+    at_least: float | None = None  # met when measured >= at_least ...
+    at_most: float | None = None  # ... or measured <= at_most
+    min_rows: int = 0  # only judged when the case ran at this size or more
+
+
+#: Rules whose every-request and batch rates have goals: all but ``ftl``, whose goal is
+#: its cost at 1,000 updates (each ftl update is an exact hindsight query, by design).
+_RATE_GOALS = (("batch", "batch rule, update every 15 min", 100e6),
+               ("every_1000", "batch rule, update every 1,000 requests", 100e6),
+               ("per_request", "rule updating after every request", 30e6))
+
+
+def evaluate_targets(result: dict[str, Any]) -> list[dict[str, object]]:
+    """One row per goal: ``target``, ``case``, ``goal``, ``measured``, ``unit`` and
+    ``status`` (``met``, ``missed``, ``not measured`` when the case did not run or failed,
+    ``below target size`` when it ran on fewer rows than the goal is stated for)."""
+    checks: list[tuple[Target, str, dict | None, float | None]] = []
+
+    def rate(entry: dict | None) -> float | None:
+        return entry.get("rows_per_s") if isinstance(entry, dict) else None
+
+    hind = result.get("hindsight")
+    checks.append((Target("hindsight solve", ">= 100M rows/s per core", "rows/s",
+                          at_least=100e6, min_rows=10_000_000), "hindsight", hind, rate(hind)))
+    rules = result.get("rules", {})
+    for schedule, what, goal in _RATE_GOALS:
+        for rule, entries in rules.items():
+            if rule == "ftl":
+                continue
+            entry = entries.get(schedule)
+            checks.append((Target(f"{what}: {rule}", f">= {goal / 1e6:.0f}M rows/s per core",
+                                  "rows/s", at_least=goal, min_rows=10_000_000),
+                           f"rules.{rule}.{schedule}", entry, rate(entry)))
+    ftl = rules.get("ftl", {}).get("1000_updates")
+    ratio = result.get("ftl_vs_hindsight", {}).get("ratio")
+    checks.append((Target("ftl, 1,000 updates", "<= 3x one hindsight solve", "x solve",
+                          at_most=3.0, min_rows=10_000_000), "ftl_vs_hindsight", ftl, ratio))
+    ing = result.get("ingest_parquet")
+    checks.append((Target("Parquet ingest", ">= 5M rows/s", "rows/s", at_least=5e6,
+                          min_rows=5_000_000), "ingest_parquet", ing, rate(ing)))
+    big = result.get("backtest_large")
+    checks.append((Target("backtest over a 100M-row catalog", "peak memory < 4 GiB", "MiB",
+                          at_most=4096.0, min_rows=100_000_000), "backtest_large", big,
+                   big.get("peak_tree_rss_mb") if isinstance(big, dict) else None))
+    rows_out = []
+    for target, case, entry, measured in checks:
+        if not isinstance(entry, dict) or "error" in entry or measured is None:
+            status = "not measured"
+        elif int(entry.get("rows", 0)) < target.min_rows:
+            status = "below target size"
+        elif target.at_least is not None:
+            status = "met" if measured >= target.at_least else "missed"
+        else:
+            status = "met" if measured <= float(target.at_most) else "missed"
+        rows_out.append({"target": target.name, "case": case, "goal": target.goal,
+                         "measured": None if measured is None else float(measured),
+                         "unit": target.unit, "status": status})
+    return rows_out
 
 
 def run_bench(cfg: BenchConfig, progress: Callable[[str], None] | None = None,
@@ -414,4 +492,5 @@ def run_bench(cfg: BenchConfig, progress: Callable[[str], None] | None = None,
     hind = out.get("hindsight")
     if ftl and isinstance(hind, dict) and ftl.get("seconds") and hind.get("seconds"):
         out["ftl_vs_hindsight"] = {"ratio": float(ftl["seconds"]) / float(hind["seconds"])}
+    out["targets"] = evaluate_targets(out)
     return out

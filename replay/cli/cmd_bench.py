@@ -8,7 +8,9 @@ from pathlib import Path
 import typer
 
 #: Top-level keys of the bench result that are not timed cases.
-NOT_CASES = frozenset({"format_version", "config", "machine", "rules", "ftl_vs_hindsight"})
+NOT_CASES = frozenset({"format_version", "config", "machine", "rules", "ftl_vs_hindsight",
+                       "targets"})
+_STATUS_STYLE = {"met": "green", "missed": "bold red"}
 
 
 def bench(
@@ -104,6 +106,16 @@ def bench(
     if "ftl_vs_hindsight" in result:
         typer.echo(f"ftl 1,000 updates / one hindsight solve: "
                    f"{result['ftl_vs_hindsight']['ratio']:.2f}x")
+    goals = Table(title=f"goals ({result['machine'].get('cpu_model', '?')})")
+    for col in ("goal", "wanted", "measured", "status"):
+        goals.add_column(col, justify="right" if col == "measured" else "left")
+    for t in result.get("targets", []):
+        x = t["measured"]
+        shown = "-" if x is None else (f"{x / 1e6:.1f}M rows/s" if t["unit"] == "rows/s"
+                                       else f"{x:.2f} {t['unit']}")
+        goals.add_row(t["target"], t["goal"], shown, t["status"],
+                      style=_STATUS_STYLE.get(t["status"]))
+    Console().print(goals)
 
 
 def register(app: typer.Typer) -> None:
