@@ -18,6 +18,7 @@ import pytest
 
 import replay.ingest as ingest_mod
 from replay.ingest import ingest
+from replay.schema import RejectReason
 
 T0 = 1_772_409_600_000_000  # 2026-03-02T00:00:00Z, microseconds
 SMALL_ROW_GROUP = 64  # rows; small so that files hold several row groups and a remainder
@@ -149,12 +150,9 @@ def test_repeated_hashes_exact() -> None:
     assert ingest_mod._repeated([np.arange(10, dtype=np.uint64)]).to_pylist() == []
 
 
-def _order_batch(cids: list[str], ts: list[int], days: list[int]) -> pa.RecordBatch:
-    return pa.record_batch({
-        "ts": pa.array(ts, pa.int64()).cast(pa.timestamp("us", tz="UTC")),
-        "campaign_id": pa.array(cids),
-        "date": pa.array(days, pa.int32()).cast(pa.date32()),
-    })
+def _order_rows(cids: list[str], ts: list[int], days: list[int]) -> tuple:
+    """(days, ts, campaign ids) as ``_catalog_order_breaks`` takes them."""
+    return np.array(days, np.int64), np.array(ts, np.int64), pa.array(cids)
 
 
 @pytest.mark.parametrize(("cids", "ts", "days", "breaks"), [
@@ -168,14 +166,14 @@ def _order_batch(cids: list[str], ts: list[int], days: list[int]) -> pa.RecordBa
 ])
 def test_catalog_order_check(cids: list[str], ts: list[int], days: list[int],
                              breaks: bool) -> None:
-    assert ingest_mod._catalog_order_breaks(_order_batch(cids, ts, days), None) is breaks
+    assert ingest_mod._catalog_order_breaks(*_order_rows(cids, ts, days), None) is breaks
 
 
 def test_order_check_against_previous_batch() -> None:
-    batch = _order_batch(["a", "a"], [5, 6], [0, 0])
-    assert ingest_mod._catalog_order_breaks(batch, (0, "a", 5)) is False
-    assert ingest_mod._catalog_order_breaks(batch, (0, "a", 7)) is True
-    assert ingest_mod._catalog_order_breaks(batch, (0, "b", 1)) is True
+    rows = _order_rows(["a", "a"], [5, 6], [0, 0])
+    assert ingest_mod._catalog_order_breaks(*rows, (0, "a", 5)) is False
+    assert ingest_mod._catalog_order_breaks(*rows, (0, "a", 7)) is True
+    assert ingest_mod._catalog_order_breaks(*rows, (0, "b", 1)) is True
 
 
 def test_in_order_summary_and_statistics(tmp_path: Path, monkeypatch) -> None:
@@ -203,3 +201,178 @@ def test_in_order_summary_and_statistics(tmp_path: Path, monkeypatch) -> None:
         with_stats = {names[i] for i in range(md.num_columns)
                       if rg.column(i).is_stats_set and rg.column(i).statistics.has_min_max}
         assert with_stats == set(ingest_mod._STATISTICS_COLUMNS)
+
+
+# --------------------------------------------------------------------------- cheap filter
+
+#: Edge values of every checked column; the rows are their cross product over a few columns
+#: and every value of the others, so each check meets each kind of neighbour.
+_EDGE_TS = ["2026-03-02T10:00:00Z", "", " ", "next tuesday", "2026-03-02 10:00:00"]
+_EDGE_TEXT = ["cA", "", " ", "  x ", "\t"]
+_EDGE_PRICING = ["first_price", "second_price", "", "third_price", "First_price"]
+_EDGE_NUMBER = ["0.01", "0", "-0", "-0.0", "", "abc", "nan", "NaN", "inf", "-inf", "-1e-300",
+                "1e308"]
+_EDGE_PROB = ["1", "0.5", "0", "1.0000001", "-1", "", "nan", "inf", "often"]
+
+
+def _edge_rows() -> list[list[str]]:
+    rows = []
+    base = [_EDGE_TS[0], "cA", "feed", "second_price", "0.01", "0.002", "r", "1"]
+    columns = [_EDGE_TS, _EDGE_TEXT, _EDGE_TEXT, _EDGE_PRICING, _EDGE_NUMBER, _EDGE_NUMBER,
+               ["r"], _EDGE_PROB]
+    for i, values in enumerate(columns):
+        for v in values:
+            for j, w in enumerate(columns):  # pairs: value v in column i, w in column j
+                for x in w[:4]:
+                    row = list(base)
+                    row[i], row[j] = v, x
+                    rows.append(row)
+    return rows
+
+
+def _view(con, path: Path) -> None:
+    group = ingest_mod._Group([str(path)], pq.read_schema(path), path)
+    typed, _raw = ingest_mod._group_view_sql(group)
+    con.execute("CREATE OR REPLACE TEMP VIEW v AS " + typed)
+
+
+@pytest.mark.parametrize("typed_columns", [False, True])
+def test_accepted_condition_is_reason_is_null(tmp_path: Path, typed_columns: bool) -> None:
+    """``ok`` (the accepted rows' filter) is TRUE exactly where ``reason`` is NULL, over
+    string columns (CSV) and typed columns (Parquet with NULLs, NaN, infinities, -0.0)."""
+    names = ["ts", "campaign_id", "placement", "pricing", "value", "min_win_price",
+             "request_id", "charge_prob"]
+    rows = _edge_rows()
+    table = pa.table({n: [r[i] for r in rows] for i, n in enumerate(names)})
+    if typed_columns:
+        def num(col: str) -> pa.Array:
+            out = []
+            for s in table.column(col).to_pylist():
+                try:
+                    out.append(float(s))
+                except ValueError:
+                    out.append(None)
+            return pa.array(out, pa.float64())
+
+        ts = pc.cast(pc.if_else(pc.equal(table.column("ts"), _EDGE_TS[0]),
+                                1_772_445_600_000_000, None), pa.int64())
+        table = table.set_column(0, "ts", ts.cast(pa.timestamp("us", tz="UTC")))
+        for col in ("value", "min_win_price", "charge_prob"):
+            table = table.set_column(names.index(col), col, num(col))
+        table = table.set_column(1, "campaign_id", pc.if_else(
+            pc.equal(table.column("campaign_id"), ""), None, table.column("campaign_id")))
+    path = tmp_path / "edges.parquet"
+    pq.write_table(table, path)
+    con = ingest_mod._connect(tmp_path)
+    try:
+        _view(con, path)
+        mismatched = con.execute(
+            "SELECT count(*) FROM v WHERE coalesce(ok, FALSE) <> (reason IS NULL)").fetchall()
+        reasons = {r for (r,) in con.execute("SELECT DISTINCT reason FROM v").fetchall()}
+    finally:
+        con.close()
+    assert mismatched == [(0,)]
+    # The input reaches every check (duplicates are found elsewhere) and has good rows.
+    expected = {str(r) for r in RejectReason} - {"duplicate_request"}
+    if typed_columns:  # typed columns cannot hold an unparseable time or a non-number
+        expected -= {"unparseable_ts"}
+    assert None in reasons
+    assert expected <= reasons
+
+
+# --------------------------------------------------------------------------- writer threads
+
+def _auction_files(cat: Path) -> dict[str, bytes]:
+    return {f.parent.name: f.read_bytes() for f in sorted((cat / "auctions").glob("*/*.parquet"))}
+
+
+@pytest.mark.parametrize("in_order", [True, False])
+def test_writer_threads_write_identical_files(tmp_path: Path, monkeypatch, in_order: bool) -> None:
+    """Files are the same bytes whether one or several threads encode them, on both paths."""
+    monkeypatch.setattr(ingest_mod, "ROW_GROUP_ROWS", SMALL_ROW_GROUP)
+    monkeypatch.setattr(ingest_mod, "WRITER_BACKLOG", 3)
+    table = _log(4_000, campaigns=3, in_order=in_order, duplicates=2, seed=11)
+    pq.write_table(table, tmp_path / "log.parquet")
+    files = {}
+    for threads in (1, 3):
+        monkeypatch.setattr(ingest_mod, "WRITER_THREADS", threads)
+        cat = tmp_path / f"cat{threads}"
+        report = ingest([tmp_path / "log.parquet"], cat)
+        files[threads] = _auction_files(cat)
+        assert report.rows_read == 4_000
+        assert report.accepted + report.rejected_total == report.rows_read
+    assert len(files[1]) == 3  # one file per date partition
+    assert files[1] == files[3]
+
+
+def test_writer_failure_leaves_no_catalog(tmp_path: Path, monkeypatch) -> None:
+    """An error on a writer thread surfaces as the ingest's error; nothing is left."""
+    monkeypatch.setattr(ingest_mod, "ROW_GROUP_ROWS", SMALL_ROW_GROUP)
+    pq.write_table(_log(2_000, 2, True, 0, seed=5), tmp_path / "log.parquet")
+
+    def broken(self, table, cells):
+        raise OSError("disk full")
+
+    monkeypatch.setattr(ingest_mod._File, "write", broken)
+    with pytest.raises(OSError, match="disk full"):
+        ingest([tmp_path / "log.parquet"], tmp_path / "cat")
+    assert not (tmp_path / "cat").exists()
+
+
+# --------------------------------------------------------------------------- reconciliation
+
+def test_counts_without_checking_pass(tmp_path: Path, monkeypatch) -> None:
+    """An in-order log with rejected rows: rows read come from the file footers, the
+    rejected rows are counted by reason, and no full counting pass runs."""
+    table = _log(3_000, campaigns=2, in_order=True, duplicates=0, seed=3)
+    pq.write_table(table.slice(0, 1_000), tmp_path / "a.parquet")
+    pq.write_table(table.slice(1_000), tmp_path / "b.parquet")
+
+    def no_full_pass(con):
+        raise AssertionError("full counting pass")
+
+    monkeypatch.setattr(ingest_mod, "_count_rows", no_full_pass)
+    report = ingest([tmp_path / "a.parquet", tmp_path / "b.parquet"], tmp_path / "cat")
+    assert report.rows_read == 3_000
+    assert report.rejected == {"nan_value": 1}
+    assert report.accepted == 2_999
+    assert sorted(f["rows_read"] for f in report.files) == [1_000, 2_000]
+
+
+@pytest.mark.parametrize("broken", ["_count_rejected", "_summary_cells"])
+def test_reconciliation_failure_leaves_no_catalog(tmp_path: Path, monkeypatch,
+                                                  broken: str) -> None:
+    """Counts that do not add up (rejected rows lost, written rows miscounted) stop the
+    ingest before anything is moved into the catalog."""
+    pq.write_table(_log(1_000, 2, True, 0, seed=9), tmp_path / "log.parquet")
+    real = getattr(ingest_mod, broken)
+    if broken == "_count_rejected":
+        monkeypatch.setattr(ingest_mod, broken, lambda con: {})
+    else:
+        monkeypatch.setattr(ingest_mod, broken, lambda t: real(t.slice(1)))
+    with pytest.raises(RuntimeError, match="internal error"):
+        ingest([tmp_path / "log.parquet"], tmp_path / "cat")
+    assert not (tmp_path / "cat").exists()
+
+
+def test_summary_matches_written_files(tmp_path: Path, monkeypatch) -> None:
+    """The summary taken from the write stream equals a query over the written files, on
+    the in-order and the sorted path."""
+    monkeypatch.setattr(ingest_mod, "ROW_GROUP_ROWS", SMALL_ROW_GROUP)
+    pq.write_table(_log(3_000, 4, False, 3, seed=2), tmp_path / "log.parquet")
+    for speculate in (True, False):
+        monkeypatch.setattr(ingest_mod, "SPECULATE_ORDER", speculate)
+        cat = tmp_path / f"cat_{speculate}"
+        report = ingest([tmp_path / "log.parquet"], cat)
+        t = pq.read_table(cat / "auctions")
+        counts = t.group_by("campaign_id").aggregate([([], "count_all")])
+        meta = json.loads((cat / "catalog.json").read_text())
+        assert meta["campaign_rows"] == dict(sorted(zip(
+            counts.column("campaign_id").to_pylist(), counts.column("count_all").to_pylist(),
+            strict=True)))
+        pairs = {(p, q) for p, q in zip(t.column("placement").to_pylist(),
+                                        t.column("pricing").to_pylist(), strict=True)}
+        assert meta["placements"] == [list(p) for p in sorted(pairs)]
+        assert report.first_ts == pc.min(t.column("ts")).as_py()
+        assert report.last_ts == pc.max(t.column("ts")).as_py()
+        assert report.accepted == t.num_rows
