@@ -397,8 +397,8 @@ _RATE_GOALS = (("batch", "batch rule, update every 15 min", 100e6),
 
 
 def evaluate_targets(result: dict[str, Any]) -> list[dict[str, object]]:
-    """One row per goal: ``target``, ``case``, ``goal``, ``measured``, ``unit`` and
-    ``status`` (``met``, ``missed``, ``not measured`` when the case did not run or failed,
+    """One row per goal whose case ran: ``target``, ``case``, ``goal``, ``measured``,
+    ``unit`` and ``status`` (``met``, ``missed``, ``not measured`` when the case failed,
     ``below target size`` when it ran on fewer rows than the goal is stated for)."""
     checks: list[tuple[Target, str, dict | None, float | None]] = []
 
@@ -430,6 +430,8 @@ def evaluate_targets(result: dict[str, Any]) -> list[dict[str, object]]:
                    big.get("peak_tree_rss_mb") if isinstance(big, dict) else None))
     rows_out = []
     for target, case, entry, measured in checks:
+        if entry is None:
+            continue  # the case was not part of this run (--only, or --large not given)
         if not isinstance(entry, dict) or "error" in entry or measured is None:
             status = "not measured"
         elif int(entry.get("rows", 0)) < target.min_rows:
