@@ -398,8 +398,9 @@ _RATE_GOALS = (("batch", "batch rule, update every 15 min", 100e6),
 
 def evaluate_targets(result: dict[str, Any]) -> list[dict[str, object]]:
     """One row per goal whose case ran: ``target``, ``case``, ``goal``, ``measured``,
-    ``unit`` and ``status`` (``met``, ``missed``, ``not measured`` when the case failed,
-    ``below target size`` when it ran on fewer rows than the goal is stated for)."""
+    ``unit`` and ``status`` (``met``, ``missed``, ``not measured`` when the case failed or,
+    for the ftl ratio, the hindsight case was not run; ``below target size`` when it ran on
+    fewer rows than the goal is stated for)."""
     checks: list[tuple[Target, str, dict | None, float | None]] = []
 
     def rate(entry: dict | None) -> float | None:
