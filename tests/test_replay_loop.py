@@ -230,6 +230,7 @@ def test_bad_input_errors() -> None:
 @given(seed=st.integers(0, 10_000), model=st.sampled_from(["empirical", "lognormal"]))
 def test_grid_shading_equals_shade(seed: int, model: str) -> None:
     # The loop's grid accelerator must return exactly what landscape.shade returns.
+    from replay.kernels.bits import MASK
     from replay.kernels.landscape import shade
     from replay.kernels.replay_loop import build_shade_accel, shade_fast
 
@@ -240,14 +241,49 @@ def test_grid_shading_equals_shade(seed: int, model: str) -> None:
     codes = rng.integers(0, 3, n).astype(np.int32)
     tables = fit_shading(prices, codes, [("a", "first_price"), ("b", "second_price"),
                                          ("c", "first_price")], model=model)
-    acc = build_shade_accel(tables.offsets, tables.knots_w, tables.linear, tables.first_price)
+    acc = build_shade_accel(tables.offsets, tables.knots_w, tables.knots_b, tables.linear,
+                            tables.first_price)
     args = (tables.offsets, tables.knots_w, tables.knots_b, tables.linear, tables.first_price)
     ws = np.concatenate([rng.lognormal(-6, 3, 300), tables.knots_w,
                          np.nextafter(tables.knots_w, 0), np.nextafter(tables.knots_w, 1),
                          [0.0, 1e300, np.inf]])
     for p in range(3):
         for w in ws:
-            assert shade_fast(w, p, *args, *acc) == shade(w, p, *args), (w, p)
+            assert shade_fast(w, p, *args, *acc, MASK) == min(shade(w, p, *args), w), (w, p)
+
+
+@pytest.mark.parametrize("prices", [
+    # Many knots in one grid cell: the lookup's rare scan past the cell's second knot.
+    1.0 + np.arange(400) * 1e-6,
+    # Knots over ~1,800 octaves: too wide for a grid, the placement falls back to shade.
+    np.geomspace(1e-280, 1e270, 200),
+    # Only zero prices: no positive knot to build a grid on.
+    np.zeros(50),
+])
+def test_grid_shading_equals_shade_on_hard_tables(prices: np.ndarray) -> None:
+    from replay.kernels import replay_loop as rl
+    from replay.kernels.bits import MASK
+    from replay.kernels.landscape import shade
+
+    codes = np.zeros(len(prices), np.int32)
+    tables = fit_shading(prices, codes, [("a", "first_price")], model="empirical")
+    grid, rec, gidx = rl.build_shade_accel(tables.offsets, tables.knots_w, tables.knots_b,
+                                           tables.linear, tables.first_price)
+    args = (tables.offsets, tables.knots_w, tables.knots_b, tables.linear, tables.first_price)
+    kw = tables.knots_w[np.isfinite(tables.knots_w)]
+    ws = np.concatenate([kw, np.nextafter(kw, 0), np.nextafter(kw, np.inf), prices,
+                         [0.0, 1e-300, 1e300, np.inf]])
+    rare = 0
+    for w in ws:
+        assert rl.shade_fast(w, 0, *args, grid, rec, gidx, MASK) == min(shade(w, 0, *args), w)
+        if grid[0, rl.G_SLOW] == 0:
+            cell = min(max((int(np.float64(w).view(np.int64)) >> rl._KEY_SHIFT)
+                           - grid[0, rl.G_KMIN], 0), grid[0, rl.G_NCELL])
+            rare += bool(w > rec[cell, rl.R_NEXT])
+    expect_slow = prices.max() > 1e100 or prices.max() == 0.0
+    assert grid[0, rl.G_SLOW] == expect_slow
+    if prices.max() == 1.0 + 399e-6:
+        assert rare > 100  # the scan path really ran
 
 
 @settings(max_examples=60, deadline=None)

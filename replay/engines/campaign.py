@@ -23,6 +23,7 @@ import polars as pl
 from replay.engines.windows import parse_duration
 from replay.errors import UsageError
 from replay.kernels import replay_loop as rl
+from replay.kernels.bits import MASK, UNIT
 from replay.rules.base import BidRule, IntervalFeedback, TrainingContext
 from replay.schema import FIRST_PRICE, SECOND_PRICE, CampaignArrays, CampaignSpec
 
@@ -277,8 +278,8 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
     fp = np.ascontiguousarray(rows.first_price, np.bool_)
     shade_args = (tab["offsets"], tab["knots_w"], tab["knots_b"], tab["linear"],
                   tab["first_price"], tab["max_logged_price"],
-                  *rl.build_shade_accel(tab["offsets"], tab["knots_w"], tab["linear"],
-                                        tab["first_price"]))
+                  *rl.build_shade_accel(tab["offsets"], tab["knots_w"], tab["knots_b"],
+                                        tab["linear"], tab["first_price"]), UNIT, MASK)
     if thresholds:
         fast, need, above_w = rl.win_thresholds(price, plc, fp, shade_on, *shade_args[:6])
         fast = bool(fast)

@@ -31,7 +31,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from replay.kernels.bits import f64_bits
+from replay.kernels.bits import f64_bits, pick
 from replay.kernels.ftl_index import ftl_insert, ftl_lambda_for_spend
 from replay.kernels.landscape import shade
 
@@ -102,11 +102,26 @@ SERIES_COLUMNS = ("update", "ts_us", "lambda", "mu", "auctions", "wins", "result
                   "expected_spend", "target_spend", "cum_spend", "cum_target")
 
 
-ACCEL_PER_OCTAVE = 64  # grid cells per factor 2 of w in the shading lookup accelerator
+ACCEL_PER_OCTAVE = 128  # grid cells per factor 2 of w in the shading lookup accelerator
 ACCEL_MAX_CELLS = 1 << 16  # per placement; wider tables use ``shade`` itself
 
+# Columns of the accelerator's per-placement int64 table ``grid``.
+G_KMIN = 0  # key of the smallest positive knot
+G_NCELL = 1  # cells (0: no grid; one record that shades to w)
+G_START = 2  # row of the placement's first cell in ``rec``
+G_HI = 3  # offsets[p + 1]: one past the placement's last knot
+G_SLOW = 4  # 1: a first-price table the grid cannot serve (linear, or too wide): ``shade``
+G_SIZE = 5
 
-_KEY_SHIFT = 52 - 6  # exponent and the top 6 mantissa bits: ACCEL_PER_OCTAVE = 2**6 cells
+# Columns of a cell record ``rec[cell]``: the first knot at or after the cell's start and
+# the bids on either side of it, so one compare decides the bid.
+R_KNOT = 0
+R_BID_BELOW = 1  # bid for w <= knot (+inf: no knot below w, the bid is w)
+R_BID_ABOVE = 2  # bid for knot < w <= next knot
+R_NEXT = 3  # the knot after it (w above it: scan on from there; rare)
+R_SIZE = 4
+
+_KEY_SHIFT = 52 - 7  # exponent and the top 7 mantissa bits: ACCEL_PER_OCTAVE = 2**7 cells
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -117,69 +132,97 @@ def _cell_key(w):
 
 
 @njit(cache=True, nogil=True)
-def build_shade_accel(offsets, knots_w, linear, first_price):
-    """A log-spaced grid over each step table's knots: ``idx[start[p] + c]`` = the number of
-    knots (absolute position) whose key is below cell c, so a lookup is one ``frexp`` and a
-    short scan instead of a binary search with unpredictable branches. Returns
-    ``(kmin, ncell, start, idx)``; ``ncell[p] == 0``: no grid (use ``shade``)."""
+def build_shade_accel(offsets, knots_w, knots_b, linear, first_price):
+    """A log-spaced grid of cell records over each first-price step table's positive finite
+    knots, so shading is a shift, one record read and one compare instead of a search.
+
+    Returns ``(grid, rec, gidx)``: ``grid[p, G_*]`` per placement; ``rec[start + c, R_*]``
+    for cell c and one more record per placement after its last cell (every knot up to the
+    last finite one lies below such w); ``gidx[start + c]``: the absolute position of the
+    record's knot. Placements without a grid (second price, empty) have one record that
+    shades to w.
+    """
     p_count = first_price.shape[0]
-    kmin = np.zeros(max(p_count, 1), np.int64)
-    ncell = np.zeros(max(p_count, 1), np.int64)
-    start = np.zeros(max(p_count, 1) + 1, np.int64)
+    grid = np.zeros((max(p_count, 1), G_SIZE), np.int64)
     total = 0
     for p in range(p_count):
         lo = offsets[p]
         hi = offsets[p + 1]
-        start[p] = total
-        if first_price[p] and not linear[p] and hi > lo and knots_w[lo] > 0.0 \
-                and np.isfinite(knots_w[hi - 1]):
-            k0 = _cell_key(knots_w[lo])
-            k1 = _cell_key(knots_w[hi - 1])
-            if k1 - k0 + 1 <= ACCEL_MAX_CELLS:
-                kmin[p] = k0
-                ncell[p] = k1 - k0 + 1
-                total += k1 - k0 + 1
-    start[max(p_count, 1)] = total
-    idx = np.zeros(max(total, 1), np.int64)
+        grid[p, G_START] = total
+        grid[p, G_HI] = hi
+        if first_price[p] and hi > lo:
+            a = lo  # first positive knot (zero prices give zero knots)
+            while a < hi and not (knots_w[a] > 0.0):
+                a += 1
+            z = hi  # one past the last finite knot
+            while z > a and not (knots_w[z - 1] < np.inf):
+                z -= 1
+            if linear[p] or a >= z \
+                    or _cell_key(knots_w[z - 1]) - _cell_key(knots_w[a]) + 1 > ACCEL_MAX_CELLS:
+                grid[p, G_SLOW] = 1
+            else:
+                grid[p, G_KMIN] = _cell_key(knots_w[a])
+                grid[p, G_NCELL] = _cell_key(knots_w[z - 1]) - grid[p, G_KMIN] + 1
+        total += grid[p, G_NCELL] + 1
+    rec = np.full((max(total, 1), R_SIZE), np.inf)
+    gidx = np.zeros(max(total, 1), np.int64)
     for p in range(p_count):
-        if ncell[p] == 0:
-            continue
         lo = offsets[p]
         hi = offsets[p + 1]
-        i = lo
-        for c in range(ncell[p]):
-            while i < hi and _cell_key(knots_w[i]) < kmin[p] + c:
-                i += 1
-            idx[start[p] + c] = i
-    return kmin, ncell, start, idx
+        s = grid[p, G_START]
+        if grid[p, G_NCELL] == 0:
+            gidx[s] = lo
+            continue
+        kmin = grid[p, G_KMIN]
+        h = lo
+        for c in range(grid[p, G_NCELL] + 1):
+            while h < hi and _cell_key(knots_w[h]) < kmin + c:
+                h += 1  # knots before h lie in earlier cells: below every w of cell c
+            gidx[s + c] = h
+            if h > lo:
+                rec[s + c, R_BID_BELOW] = knots_b[h - 1]
+            if h < hi:
+                rec[s + c, R_KNOT] = knots_w[h]
+                rec[s + c, R_BID_ABOVE] = knots_b[h]
+            if h + 1 < hi:
+                rec[s + c, R_NEXT] = knots_w[h + 1]
+    return grid, rec, gidx
 
 
 @njit(cache=True, nogil=True, inline="always")
-def grid_shade(w, p, offsets, knots_w, knots_b, kmin, ncell, start, idx):
-    """``shade`` of a step table with a grid (``ncell[p] > 0``) for finite ``w > 0``."""
-    lo = offsets[p]
-    hi = offsets[p + 1]
-    c = (f64_bits(w) >> _KEY_SHIFT) - kmin[p]
-    if c < 0:
-        return w  # below every knot: no knot strictly below w
-    if c >= ncell[p]:
-        return knots_b[hi - 1]  # above every knot
-    i = idx[start[p] + c]  # knots in earlier cells are all < w
-    while i < hi and knots_w[i] < w:
-        i += 1
-    if i == lo:
-        return w
-    return knots_b[i - 1]
+def grid_lookup(w, p, grid, rec, mask):
+    """``(bid, cell)``: the shaded bid for ``w >= 0`` from the record of w's cell, without a
+    branch (``mask`` = ``bits.MASK``), on a placement with ``grid[p, G_SLOW] == 0``. Exact
+    unless ``w > rec[cell, R_NEXT]`` (a second knot of the cell lies below w, rare): the
+    caller then scans on from knot ``gidx[cell] + 2`` (see ``shade_fast``).
+
+    A row's shaded bid matters only if the row is won, a coin flip the CPU cannot predict:
+    computing it for every row without branches costs less than a mispredicted jump. The
+    cell of w is clamped to the grid: below it only zero knots lie under w, above it only
+    infinite ones. The rare scan is left to the caller because numba wraps an inlined
+    function that branches over arrays in reference counting on every call.
+    """
+    cell = (f64_bits(w) >> _KEY_SHIFT) - grid[p, G_KMIN]
+    cell = min(max(cell, 0), grid[p, G_NCELL]) + grid[p, G_START]
+    b = pick(mask[np.int64(w > rec[cell, R_KNOT])], rec[cell, R_BID_ABOVE],
+             rec[cell, R_BID_BELOW])
+    return b, cell
 
 
 @njit(cache=True, nogil=True)
-def shade_fast(w, p, offsets, knots_w, knots_b, linear, tab_fp, kmin, ncell, start, idx):
-    """``shade(w, p, ...)`` exactly, with the grid accelerator for step tables. The loop
-    inlines this same choice (a call to a separately compiled function costs more than
-    the search itself)."""
-    if 0 <= p < tab_fp.shape[0] and ncell[p] > 0 and w > 0.0 and w < np.inf:
-        return grid_shade(w, p, offsets, knots_w, knots_b, kmin, ncell, start, idx)
-    return shade(w, p, offsets, knots_w, knots_b, linear, tab_fp)
+def shade_fast(w, p, offsets, knots_w, knots_b, linear, tab_fp, grid, rec, gidx, mask):
+    """``min(shade(w, p, ...), w)`` exactly (for ``w >= 0``), through the grid where the
+    placement has one. The loop writes out this same sequence."""
+    if 0 <= p < tab_fp.shape[0] and grid[p, G_SLOW] == 0:
+        b, cell = grid_lookup(w, p, grid, rec, mask)
+        if w > rec[cell, R_NEXT]:
+            h = gidx[cell] + 2
+            while h < grid[p, G_HI] and knots_w[h] < w:
+                h += 1
+            b = knots_b[h - 1]
+        return pick(mask[np.int64(b < w)], b, w)
+    b = shade(w, p, offsets, knots_w, knots_b, linear, tab_fp)
+    return b if b < w else w
 
 
 @njit(cache=True, nogil=True)
@@ -332,7 +375,7 @@ def _make_fused(update_inline):
                      placement, first_price, uniforms, sampled, every_n, every_us, flight_start,
                      flight_end, curve_t, curve_f, budget, norm, expected_auctions, cap,
                      fixed_bid, pbid, shade_on, offsets, knots_w, knots_b, linear, tab_fp,
-                     maxlog, ax_kmin, ax_ncell, ax_start, ax_idx, fast, need, above_w, acc, won,
+                     maxlog, grid, rec, gidx, unit, mask, fast, need, above_w, acc, won,
                      pl_acc, series, group, fb, k_begin, k_end):
         """Replay intervals ``k_begin..k_end-1`` in one compiled loop, calling
         ``update(state, params, fb)`` at each boundary; the position (row, time) carries over
@@ -399,37 +442,30 @@ def _make_fused(update_inline):
                     for r in range(i, j):
                         p = placement[r]
                         w = pbid[p] if fixed_bid else value[r] * scale
-                        if w > above_w[p]:
-                            above += 1
+                        above += w > above_w[p]
                         if w >= need[r]:
+                            # Won. No branch below depends on the row's pricing or landscape
+                            # cell (both coin flips to the CPU): a second-price row's record
+                            # shades to w and ``pick`` keeps its price instead.
                             c = price[r]
-                            if first_price[r]:
-                                b = w
-                                if shade_on:
-                                    if ax_ncell[p] > 0 and w > 0.0 and w < np.inf:
-                                        # grid_shade, written out: numba's call costs as much
-                                        # as the lookup itself
-                                        lo = offsets[p]
-                                        hi = offsets[p + 1]
-                                        cell = (f64_bits(w) >> _KEY_SHIFT) - ax_kmin[p]
-                                        if cell >= ax_ncell[p]:
-                                            b = knots_b[hi - 1]
-                                        elif cell >= 0:
-                                            h = ax_idx[ax_start[p] + cell]
-                                            while h < hi and knots_w[h] < w:
-                                                h += 1
-                                            if h > lo:
-                                                b = knots_b[h - 1]
-                                    else:
-                                        b = shade(w, p, offsets, knots_w, knots_b, linear, tab_fp)
+                            b = w
+                            if shade_on:
+                                if grid[p, G_SLOW]:  # the same for every row of a placement
+                                    b = shade(w, p, offsets, knots_w, knots_b, linear, tab_fp)
                                     if b > w:
                                         b = w
-                                paid = b
-                            else:
-                                paid = c
-                            if sampled:
+                                else:  # shade_fast, written out (see grid_lookup)
+                                    b, cell = grid_lookup(w, p, grid, rec, mask)
+                                    if w > rec[cell, R_NEXT]:
+                                        h = gidx[cell] + 2
+                                        while h < grid[p, G_HI] and knots_w[h] < w:
+                                            h += 1
+                                        b = knots_b[h - 1]
+                                    b = pick(mask[np.int64(b < w)], b, w)
+                            paid = pick(mask[np.int64(first_price[r])], b, c)
+                            if sampled:  # charged with probability q: a product, no branch
                                 q = charge_prob[r]
-                                ch = paid / q if uniforms[r] < q else 0.0
+                                ch = (paid / q) * unit[np.int64(uniforms[r] < q)]
                             else:
                                 ch = paid
                             won[r] = True
@@ -465,13 +501,18 @@ def _make_fused(update_inline):
                     if w >= c or w > ml:
                         b = w
                         if first_price[r] and shade_on:
-                            if ax_ncell[p] > 0 and w > 0.0 and w < np.inf:
-                                b = grid_shade(w, p, offsets, knots_w, knots_b, ax_kmin, ax_ncell,
-                                               ax_start, ax_idx)
-                            else:
+                            if grid[p, G_SLOW]:
                                 b = shade(w, p, offsets, knots_w, knots_b, linear, tab_fp)
-                            if b > w:
-                                b = w
+                                if b > w:
+                                    b = w
+                            else:  # shade_fast, written out (see grid_lookup)
+                                b, cell = grid_lookup(w, p, grid, rec, mask)
+                                if w > rec[cell, R_NEXT]:
+                                    h = gidx[cell] + 2
+                                    while h < grid[p, G_HI] and knots_w[h] < w:
+                                        h += 1
+                                    b = knots_b[h - 1]
+                                b = pick(mask[np.int64(b < w)], b, w)
                         if b > ml:
                             above += 1
                         if b >= c:
