@@ -24,6 +24,13 @@ Wins: with ``win_thresholds`` (step tables, the default empirical landscape) a r
 iff ``w >= need[row]``, the smallest budget-adjusted value whose shaded bid reaches the
 row's price, so only won first-price rows are shaded; otherwise every row that could win is
 shaded. Both decide exactly the same wins (a test compares them).
+
+Shading a step table reads one record of a log-spaced grid (``build_shade_accel``,
+``grid_lookup``): one compare picks the bid on either side of the cell's first knot. Values
+are chosen with ``bits.pick`` and ``bits.UNIT``/``bits.MASK`` loaded from memory, not with
+``a if cond else b``: LLVM lowers a select of doubles to a jump on x86, and a jump on a
+coin flip (which side of a knot, whether a sampled charge happens) is mispredicted half
+the time.
 """
 
 from __future__ import annotations
@@ -444,25 +451,28 @@ def _make_fused(update_inline):
                         w = pbid[p] if fixed_bid else value[r] * scale
                         above += w > above_w[p]
                         if w >= need[r]:
-                            # Won. No branch below depends on the row's pricing or landscape
-                            # cell (both coin flips to the CPU): a second-price row's record
-                            # shades to w and ``pick`` keeps its price instead.
+                            # Won. The shaded bid has no branch on w's landscape cell (a
+                            # coin flip to the CPU); the jump on the row's pricing stays:
+                            # measured, shading second-price rows too to drop it made
+                            # per-request rules slower (it lengthens their dependency chain).
                             c = price[r]
-                            b = w
-                            if shade_on:
-                                if grid[p, G_SLOW]:  # the same for every row of a placement
-                                    b = shade(w, p, offsets, knots_w, knots_b, linear, tab_fp)
-                                    if b > w:
-                                        b = w
-                                else:  # shade_fast, written out (see grid_lookup)
-                                    b, cell = grid_lookup(w, p, grid, rec, mask)
-                                    if w > rec[cell, R_NEXT]:
-                                        h = gidx[cell] + 2
-                                        while h < grid[p, G_HI] and knots_w[h] < w:
-                                            h += 1
-                                        b = knots_b[h - 1]
-                                    b = pick(mask[np.int64(b < w)], b, w)
-                            paid = pick(mask[np.int64(first_price[r])], b, c)
+                            paid = c
+                            if first_price[r]:
+                                b = w
+                                if shade_on:
+                                    if grid[p, G_SLOW]:  # the same for every row of a placement
+                                        b = shade(w, p, offsets, knots_w, knots_b, linear, tab_fp)
+                                        if b > w:
+                                            b = w
+                                    else:  # shade_fast, written out (see grid_lookup)
+                                        b, cell = grid_lookup(w, p, grid, rec, mask)
+                                        if w > rec[cell, R_NEXT]:
+                                            h = gidx[cell] + 2
+                                            while h < grid[p, G_HI] and knots_w[h] < w:
+                                                h += 1
+                                            b = knots_b[h - 1]
+                                        b = pick(mask[np.int64(b < w)], b, w)
+                                paid = b
                             if sampled:  # charged with probability q: a product, no branch
                                 q = charge_prob[r]
                                 ch = (paid / q) * unit[np.int64(uniforms[r] < q)]
