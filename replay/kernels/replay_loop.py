@@ -219,7 +219,8 @@ def grid_lookup(w, p, grid, rec, mask):
 @njit(cache=True, nogil=True)
 def shade_fast(w, p, offsets, knots_w, knots_b, linear, tab_fp, grid, rec, gidx, mask):
     """``min(shade(w, p, ...), w)`` exactly (for ``w >= 0``), through the grid where the
-    placement has one. The loop writes out this same sequence."""
+    placement has one. The per-row loop calls it; the fast loop writes out this same
+    sequence (a call there costs more than the lookup: see ``grid_lookup``)."""
     if 0 <= p < tab_fp.shape[0] and grid[p, G_SLOW] == 0:
         b, cell = grid_lookup(w, p, grid, rec, mask)
         if w > rec[cell, R_NEXT]:
@@ -511,18 +512,9 @@ def _make_fused(update_inline):
                     if w >= c or w > ml:
                         b = w
                         if first_price[r] and shade_on:
-                            if grid[p, G_SLOW]:
-                                b = shade(w, p, offsets, knots_w, knots_b, linear, tab_fp)
-                                if b > w:
-                                    b = w
-                            else:  # shade_fast, written out (see grid_lookup)
-                                b, cell = grid_lookup(w, p, grid, rec, mask)
-                                if w > rec[cell, R_NEXT]:
-                                    h = gidx[cell] + 2
-                                    while h < grid[p, G_HI] and knots_w[h] < w:
-                                        h += 1
-                                    b = knots_b[h - 1]
-                                b = pick(mask[np.int64(b < w)], b, w)
+                            # a call (reference counting its arrays) is fine off the fast path
+                            b = shade_fast(w, p, offsets, knots_w, knots_b, linear, tab_fp,
+                                           grid, rec, gidx, mask)
                         if b > ml:
                             above += 1
                         if b >= c:
