@@ -279,7 +279,7 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
     shade_args = (tab["offsets"], tab["knots_w"], tab["knots_b"], tab["linear"],
                   tab["first_price"], tab["max_logged_price"],
                   *rl.build_shade_accel(tab["offsets"], tab["knots_w"], tab["knots_b"],
-                                        tab["linear"], tab["first_price"]), UNIT, MASK)
+                                        tab["linear"], tab["first_price"]))
     if thresholds:
         fast, need, above_w = rl.win_thresholds(price, plc, fp, shade_on, *shade_args[:6])
         fast = bool(fast)
@@ -327,8 +327,8 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
                   end, curve_t, curve_f, float(spec.budget), norm, float(expected))
         use_fused = path == "fused" or (path == "auto" and _fused_ok(rule))
         fb = np.zeros(rl.FB_SIZE)
-        tail = (capf, bool(rule.fixed_bid), pbid, shade_on, *shade_args, fast, need, above_w,
-                acc, won, pl_acc, series, group, fb)
+        tail = (capf, bool(rule.fixed_bid), pbid, shade_on, *shade_args, UNIT, MASK, fast, need,
+                above_w, acc, won, pl_acc, series, group, fb)
         if use_fused:
             if type(rule).numba_update is None:
                 raise UsageError(f"rule {rule.name!r} has no numba_update; use "
