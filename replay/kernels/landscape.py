@@ -125,7 +125,8 @@ def shade(w: float, p: int, offsets: np.ndarray, knots_w: np.ndarray, knots_b: n
             x1 = knots_w[j]
             y0 = knots_b[j - 1]
             y1 = knots_b[j]
-            out = y0 + (y1 - y0) * (w - x0) / (x1 - x0)
+            # A flat segment is flat all the way (w = inf would give 0 * inf = NaN).
+            out = y0 if y1 == y0 else y0 + (y1 - y0) * (w - x0) / (x1 - x0)
     if out > w:
         out = w
     if out < 0.0:

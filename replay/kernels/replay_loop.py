@@ -25,6 +25,12 @@ iff ``w >= need[row]``, the smallest budget-adjusted value whose shaded bid reac
 row's price, so only won first-price rows are shaded; otherwise every row that could win is
 shaded. Both decide exactly the same wins (a test compares them).
 
+The fast path (thresholds) takes an interval in chunks of ``WIN_CHUNK`` rows and three
+passes: list the won rows without a jump on the win (``cand[m] = r; m += won``), shade the
+won first-price rows, then add up the won rows in row order. The sums add in the same order
+as the per-row loop, so both return bit-identical totals. Rows are indexed by ``uint64``
+there: numba adds a negative-index fix-up to every load through a signed index.
+
 Shading a step table reads one record of a log-spaced grid (``build_shade_accel``,
 ``grid_lookup``): one compare picks the bid on either side of the cell's first knot. Values
 are chosen with ``bits.pick`` and ``bits.UNIT``/``bits.MASK`` loaded from memory, not with
@@ -109,6 +115,9 @@ SERIES_COLUMNS = ("update", "ts_us", "lambda", "mu", "auctions", "wins", "result
                   "expected_spend", "target_spend", "cum_spend", "cum_target")
 
 
+#: Rows per chunk of the fast path's two passes (its list of won rows stays in L1).
+WIN_CHUNK = 1024
+
 ACCEL_PER_OCTAVE = 128  # grid cells per factor 2 of w in the shading lookup accelerator
 ACCEL_MAX_CELLS = 1 << 16  # per placement; wider tables use ``shade`` itself
 
@@ -128,6 +137,7 @@ R_BID_ABOVE = 2  # bid for knot < w <= next knot
 R_NEXT = 3  # the knot after it (w above it: scan on from there; rare)
 R_SIZE = 4
 
+_U = np.uint64  # an index type numba does not wrap (see the fast loop)
 _KEY_SHIFT = 52 - 7  # exponent and the top 7 mantissa bits: ACCEL_PER_OCTAVE = 2**7 cells
 
 
@@ -210,7 +220,7 @@ def grid_lookup(w, p, grid, rec, mask):
     function that branches over arrays in reference counting on every call.
     """
     cell = (f64_bits(w) >> _KEY_SHIFT) - grid[p, G_KMIN]
-    cell = min(max(cell, 0), grid[p, G_NCELL]) + grid[p, G_START]
+    cell = _U(min(max(cell, 0), grid[p, G_NCELL]) + grid[p, G_START])
     b = pick(mask[np.int64(w > rec[cell, R_KNOT])], rec[cell, R_BID_ABOVE],
              rec[cell, R_BID_BELOW])
     return b, cell
@@ -397,6 +407,9 @@ def _make_fused(update_inline):
         function with this many arrays costs more than the work of one row.
         """
         n = ts.shape[0]
+        cand = np.empty(WIN_CHUNK, np.int64)  # pass 1's won rows of a chunk
+        cand_fp = np.empty(WIN_CHUNK, np.int64)  # those of them to shade
+        paid_buf = np.empty(WIN_CHUNK, np.float64)  # price paid per row of the chunk if won
         srow = k_begin // group  # series row and position in its bucket (no division per k)
         spos = k_begin - srow * group
         # The running totals live in locals and go back to ``acc`` when the call ends (the
@@ -444,61 +457,92 @@ def _make_fused(update_inline):
             bids = 0
             above = 0
             min_cost = 0.0
-            if fast:
-                if cum < budget:
-                    bids = j - i
-                    for r in range(i, j):
-                        p = placement[r]
+            if fast and cum < budget:
+                # Rows are indexed by unsigned integers here: numba wraps every signed
+                # index in a negative-index fix-up (about 4 instructions a load).
+                bids = j - i
+                r0 = i
+                while r0 < j:
+                    r1 = min(r0 + WIN_CHUNK, j)
+                    base = _U(r0)
+                    # Pass 1: the won rows of the chunk, listed without a jump on the win
+                    # (a coin flip the CPU would mispredict half the time).
+                    m = _U(0)
+                    m_fp = _U(0)
+                    for r in range(base, _U(r1)):
+                        p = _U(placement[r])
                         w = pbid[p] if fixed_bid else value[r] * scale
                         above += w > above_w[p]
-                        if w >= need[r]:
-                            # Won. The shaded bid has no branch on w's landscape cell (a
-                            # coin flip to the CPU); the jump on the row's pricing stays:
-                            # measured, shading second-price rows too to drop it made
-                            # per-request rules slower (it lengthens their dependency chain).
-                            c = price[r]
-                            paid = c
-                            if first_price[r]:
+                        hit = w >= need[r]
+                        cand[m] = r
+                        m += _U(hit)
+                        cand_fp[m_fp] = r
+                        m_fp += _U(hit & first_price[r])
+                        paid_buf[r - base] = price[r]
+                    # Pass 2: the price of each won first-price row is its (shaded) bid, in
+                    # a loop of independent lookups: no running sum waits on them.
+                    for t in range(m_fp):
+                        r = _U(cand_fp[t])
+                        p = _U(placement[r])
+                        w = pbid[p] if fixed_bid else value[r] * scale
+                        b = w
+                        if not shade_on:
+                            pass
+                        elif grid[p, G_SLOW]:  # the same for every row of a placement
+                            b = shade(w, np.int64(p), offsets, knots_w, knots_b, linear, tab_fp)
+                            if b > w:
                                 b = w
-                                if shade_on:
-                                    if grid[p, G_SLOW]:  # the same for every row of a placement
-                                        b = shade(w, p, offsets, knots_w, knots_b, linear, tab_fp)
-                                        if b > w:
-                                            b = w
-                                    else:  # shade_fast, written out (see grid_lookup)
-                                        b, cell = grid_lookup(w, p, grid, rec, mask)
-                                        if w > rec[cell, R_NEXT]:
-                                            h = gidx[cell] + 2
-                                            while h < grid[p, G_HI] and knots_w[h] < w:
-                                                h += 1
-                                            b = knots_b[h - 1]
-                                        b = pick(mask[np.int64(b < w)], b, w)
-                                paid = b
-                            if sampled:  # charged with probability q: a product, no branch
-                                q = charge_prob[r]
-                                ch = (paid / q) * unit[np.int64(uniforms[r] < q)]
-                            else:
-                                ch = paid
-                            won[r] = True
-                            wins += 1
-                            results += value[r]
-                            cum_r += value[r]
-                            spend += ch
-                            cum += ch
-                            expected += paid
-                            cum_e += paid
-                            min_cost += c
-                            pl_acc[p, 0] += 1.0
-                            pl_acc[p, 1] += value[r]
-                            pl_acc[p, 2] += ch
-                            pl_acc[p, 3] += paid
-                            last_ch = ch
-                            if cum >= budget:
-                                bids = r - i + 1
-                                if ex_ts < 0:
-                                    ex_ts = float(ts[r])
-                                break
-            else:
+                        else:  # shade_fast, written out (see grid_lookup)
+                            b, cell = grid_lookup(w, p, grid, rec, mask)
+                            if w > rec[cell, R_NEXT]:
+                                h = gidx[cell] + 2
+                                while h < grid[p, G_HI] and knots_w[h] < w:
+                                    h += 1
+                                b = knots_b[h - 1]
+                            b = pick(mask[np.int64(b < w)], b, w)
+                        paid_buf[r - base] = b
+                    # Pass 3: the won rows in row order, so every sum adds in the same
+                    # order as the per-row loop (bit-identical totals).
+                    r_stop = -1
+                    for t in range(m):
+                        r = _U(cand[t])
+                        p = _U(placement[r])
+                        c = price[r]
+                        paid = paid_buf[r - base]
+                        if sampled:  # charged with probability q: a product, no branch
+                            q = charge_prob[r]
+                            ch = (paid / q) * unit[np.int64(uniforms[r] < q)]
+                        else:
+                            ch = paid
+                        won[r] = True
+                        wins += 1
+                        results += value[r]
+                        cum_r += value[r]
+                        spend += ch
+                        cum += ch
+                        expected += paid
+                        cum_e += paid
+                        min_cost += c
+                        pl_acc[p, 0] += 1.0
+                        pl_acc[p, 1] += value[r]
+                        pl_acc[p, 2] += ch
+                        pl_acc[p, 3] += paid
+                        last_ch = ch
+                        if cum >= budget:
+                            r_stop = np.int64(r)
+                            break
+                    if r_stop >= 0:
+                        # The budget ran out at r_stop: rows after it were not bid on.
+                        bids = r_stop - i + 1
+                        for r in range(r_stop + 1, r1):
+                            p = placement[r]
+                            w = pbid[p] if fixed_bid else value[r] * scale
+                            above -= w > above_w[p]
+                        if ex_ts < 0:
+                            ex_ts = float(ts[r_stop])
+                        break
+                    r0 = r1
+            elif not fast:
                 for r in range(i, j):
                     if cum >= budget:
                         break
