@@ -39,9 +39,8 @@ from replay.schema import (
     REJECTED_DIR,
     CampaignArrays,
     CampaignSpec,
+    datetime_us,
 )
-
-_EPOCH = dt.datetime(1970, 1, 1, tzinfo=dt.UTC)
 
 #: iter_arrays reads campaigns in batches of about this many rows (memory bound).
 ITER_BATCH_ROWS = 4_000_000
@@ -72,10 +71,7 @@ def to_us(x: object) -> int | None:
     if hasattr(x, "to_pydatetime"):  # pandas-like timestamps
         x = x.to_pydatetime()
     if isinstance(x, dt.datetime):
-        if x.tzinfo is None:
-            x = x.replace(tzinfo=dt.UTC)
-        delta = x - _EPOCH
-        return (delta.days * 86_400 + delta.seconds) * 1_000_000 + delta.microseconds
+        return datetime_us(x)
     if isinstance(x, dt.date):
         return to_us(dt.datetime(x.year, x.month, x.day, tzinfo=dt.UTC))
     raise UsageError(f"not a time: {x!r} (give a datetime, a date, an ISO-8601 string or "

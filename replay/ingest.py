@@ -51,6 +51,7 @@ from replay.schema import (
     REQUIRED_AUCTION_COLUMNS,
     REQUIRED_CAMPAIGN_COLUMNS,
     SECOND_PRICE,
+    US_PER_DAY,
     RejectReason,
 )
 
@@ -786,8 +787,6 @@ _STATISTICS_COLUMNS = ("ts", "campaign_id")
 _ACCEPTED_SCHEMA = pa.schema([pa.field(c.name, c.type, nullable=True) for c in AUCTION_COLUMNS])
 
 
-#: Microseconds per day: the ``date=`` partition of a row is ``floor(ts_us / DAY_US)``.
-DAY_US = 86_400_000_000
 
 #: Files encoded at the same time (one writer thread each). Each file is written by one
 #: thread in order, so the bytes do not depend on this; consecutive date partitions then
@@ -997,7 +996,7 @@ def _write_accepted(con: duckdb.DuckDBPyConnection, query: str, out_dir: Path,
             if not batch.num_rows:
                 continue
             ts = batch.column("ts").cast(pa.int64()).to_numpy()
-            days = ts // DAY_US  # floor: dates before 1970 too
+            days = ts // US_PER_DAY  # the date= partition; floor: dates before 1970 too
             if check_order:
                 cid = batch.column("campaign_id")
                 if _catalog_order_breaks(days, ts, cid, last):

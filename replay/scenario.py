@@ -30,6 +30,7 @@ from replay.schema import (
     CAMPAIGN_SCHEMA,
     FIRST_PRICE,
     SECOND_PRICE,
+    US_PER_DAY,
     CampaignArrays,
 )
 
@@ -195,7 +196,7 @@ def generate_scenario(out_dir: str | Path, campaigns: int = 12, days: int = 7,
     auctions_path = out / "auctions.parquet"
     pq.write_table(table, auctions_path, compression="zstd")
 
-    end_us = start_us + days * 86_400 * 1_000_000
+    end_us = start_us + days * US_PER_DAY
     campaign_table = pa.Table.from_arrays([
         pa.array(names, pa.string()),
         pa.array(budgets, pa.float64()),

@@ -7,11 +7,28 @@ results (clicks, conversions, ...) if the impression is won. Timestamps are UTC.
 
 from __future__ import annotations
 
+import datetime as dt
 from dataclasses import dataclass, field
 from enum import StrEnum
 
 import numpy as np
 import pyarrow as pa
+
+#: Timestamps (``ts_us``, flight bounds) count microseconds since the epoch, UTC.
+US_PER_SECOND = 1_000_000
+US_PER_HOUR = 3_600 * US_PER_SECOND
+US_PER_DAY = 24 * US_PER_HOUR
+US_PER_WEEK = 7 * US_PER_DAY
+_EPOCH = dt.datetime(1970, 1, 1, tzinfo=dt.UTC)
+
+
+def datetime_us(x: dt.datetime) -> int:
+    """Microseconds since the epoch of a datetime (a naive one is taken as UTC), exactly."""
+    if x.tzinfo is None:
+        x = x.replace(tzinfo=dt.UTC)
+    delta = x - _EPOCH
+    return (delta.days * 86_400 + delta.seconds) * US_PER_SECOND + delta.microseconds
+
 
 FIRST_PRICE = "first_price"
 SECOND_PRICE = "second_price"

@@ -220,3 +220,20 @@ def test_rows_tied_in_time_come_back_in_one_order(tmp_path: Path) -> None:
         assert np.array_equal(getattr(a, name), getattr(b, name)), name
         assert np.array_equal(getattr(a, name), getattr(ref, name)), name
     assert list(a.request_id) == list(ref.request_id)
+
+
+def test_datetime_us_matches_numpy_datetime64() -> None:
+    # Reference: numpy's datetime64[us] counts microseconds since 1970-01-01 UTC.
+    import datetime as dt
+
+    from replay.schema import US_PER_DAY, datetime_us
+
+    cases = [dt.datetime(2026, 3, 1, 6, 30, 15, 123456), dt.datetime(1969, 12, 31, 23, 59, 59, 1),
+             dt.datetime(1970, 1, 1)]
+    for naive in cases:
+        expected = int(np.datetime64(naive, "us").astype(np.int64))
+        assert datetime_us(naive) == expected
+        assert datetime_us(naive.replace(tzinfo=dt.UTC)) == expected
+        plus2 = dt.timezone(dt.timedelta(hours=2))
+        assert datetime_us((naive + dt.timedelta(hours=2)).replace(tzinfo=plus2)) == expected
+    assert datetime_us(dt.datetime(1970, 1, 2)) == US_PER_DAY

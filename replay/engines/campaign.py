@@ -25,11 +25,16 @@ from replay.errors import UsageError
 from replay.kernels import replay_loop as rl
 from replay.kernels.bits import MASK, UNIT
 from replay.rules.base import BidRule, IntervalFeedback, TrainingContext
-from replay.schema import FIRST_PRICE, SECOND_PRICE, CampaignArrays, CampaignSpec
+from replay.schema import (
+    FIRST_PRICE,
+    SECOND_PRICE,
+    US_PER_DAY,
+    US_PER_HOUR,
+    US_PER_WEEK,
+    CampaignArrays,
+    CampaignSpec,
+)
 
-HOUR_US = 3_600_000_000
-DAY_US = 24 * HOUR_US
-WEEK_US = 7 * DAY_US
 CHARGE_MODES = ("expected", "sampled")
 SHADING_MODELS = ("empirical", "lognormal", "none")
 @dataclass(frozen=True)
@@ -88,10 +93,10 @@ def traffic_forecast(train_ts: np.ndarray, train_start: int, train_end: int, sta
     span = max(int(train_end) - int(train_start), 1)
     if n == 0:
         return math.nan, None
-    if span >= DAY_US:
-        period = WEEK_US if span >= WEEK_US else DAY_US
-        buckets = period // HOUR_US
-        counts = np.bincount(((train_ts // HOUR_US) % buckets).astype(np.int64),
+    if span >= US_PER_DAY:
+        period = US_PER_WEEK if span >= US_PER_WEEK else US_PER_DAY
+        buckets = period // US_PER_HOUR
+        counts = np.bincount(((train_ts // US_PER_HOUR) % buckets).astype(np.int64),
                              minlength=buckets).astype(np.float64)
         exposure = _bucket_hours(train_start, train_end, buckets)
         rate = np.where(exposure > 0, counts / np.maximum(exposure, 1e-300), 0.0)
@@ -99,13 +104,13 @@ def traffic_forecast(train_ts: np.ndarray, train_start: int, train_end: int, sta
             rate[exposure <= 0] = counts.sum() / exposure.sum()
     else:
         buckets = 1
-        rate = np.array([n / (span / HOUR_US)])
+        rate = np.array([n / (span / US_PER_HOUR)])
     # Knots at hour boundaries inside the flight; density = rate (per hour) of the bucket.
-    first = (int(start) // HOUR_US + 1) * HOUR_US
-    inner = np.arange(first, int(end), HOUR_US, dtype=np.int64)
+    first = (int(start) // US_PER_HOUR + 1) * US_PER_HOUR
+    inner = np.arange(first, int(end), US_PER_HOUR, dtype=np.int64)
     knots = np.concatenate([[int(start)], inner, [int(end)]]).astype(np.int64)
-    seg_hours = np.diff(knots) / HOUR_US
-    seg_bucket = (knots[:-1] // HOUR_US) % buckets
+    seg_hours = np.diff(knots) / US_PER_HOUR
+    seg_bucket = (knots[:-1] // US_PER_HOUR) % buckets
     mass = rate[seg_bucket] * seg_hours
     total = float(mass.sum())
     if not total > 0:
@@ -118,11 +123,11 @@ def traffic_forecast(train_ts: np.ndarray, train_start: int, train_end: int, sta
 def _bucket_hours(t0: int, t1: int, buckets: int) -> np.ndarray:
     """Hours of each hour-of-period bucket covered by ``[t0, t1)`` (fractional at edges)."""
     out = np.zeros(buckets)
-    h0, h1 = int(t0) // HOUR_US, (int(t1) - 1) // HOUR_US
+    h0, h1 = int(t0) // US_PER_HOUR, (int(t1) - 1) // US_PER_HOUR
     hours = np.arange(h0, h1 + 1, dtype=np.int64)
-    lo = np.maximum(hours * HOUR_US, t0)
-    hi = np.minimum((hours + 1) * HOUR_US, t1)
-    np.add.at(out, hours % buckets, np.maximum(hi - lo, 0) / HOUR_US)
+    lo = np.maximum(hours * US_PER_HOUR, t0)
+    hi = np.minimum((hours + 1) * US_PER_HOUR, t1)
+    np.add.at(out, hours % buckets, np.maximum(hi - lo, 0) / US_PER_HOUR)
     return out
 
 

@@ -39,6 +39,7 @@ from replay.schema import (
     PARTITION_COLUMN,
     CampaignArrays,
     CampaignSpec,
+    datetime_us,
 )
 
 #: Default Spark master when none is given and the program was not started by spark-submit.
@@ -471,10 +472,7 @@ def specs_from_table(table: pa.Table) -> dict[str, CampaignSpec]:
         if v is None:
             return None
         if isinstance(v, datetime):
-            if v.tzinfo is None:
-                v = v.replace(tzinfo=UTC)
-            delta = v - datetime(1970, 1, 1, tzinfo=UTC)
-            return (delta.days * 86_400 + delta.seconds) * 1_000_000 + delta.microseconds
+            return datetime_us(v)
         return int(v)
 
     out: dict[str, CampaignSpec] = {}

@@ -15,10 +15,7 @@ from datetime import UTC, date, datetime, timedelta
 from typing import Any
 
 from replay.errors import UsageError
-from replay.schema import CampaignSpec
-
-US_PER_SECOND = 1_000_000
-US_PER_DAY = 86_400 * US_PER_SECOND
+from replay.schema import US_PER_DAY, US_PER_SECOND, CampaignSpec, datetime_us
 
 #: Accepted duration suffixes and their length in microseconds.
 DURATION_UNITS: dict[str, int] = {
@@ -91,10 +88,9 @@ def to_us(value: Any, option: str) -> int | None:
     if isinstance(value, int):
         return int(value)
     if isinstance(value, datetime):
-        dt = value if value.tzinfo is not None else value.replace(tzinfo=UTC)
-        return _dt_us(dt)
+        return datetime_us(value)
     if isinstance(value, date):
-        return _dt_us(datetime(value.year, value.month, value.day, tzinfo=UTC))
+        return datetime_us(datetime(value.year, value.month, value.day, tzinfo=UTC))
     if isinstance(value, str):
         text = value.strip()
         if text.endswith("Z"):
@@ -106,13 +102,8 @@ def to_us(value: Any, option: str) -> int | None:
                              "such as 2026-03-02 or 2026-03-02T06:00:00 (UTC)") from None
         if dt.tzinfo is None:
             dt = dt.replace(tzinfo=UTC)
-        return _dt_us(dt)
+        return datetime_us(dt)
     raise UsageError(f"{option} {value!r}: not a time; allowed: ISO date or datetime (UTC)")
-
-
-def _dt_us(dt: datetime) -> int:
-    delta = dt.astimezone(UTC) - datetime(1970, 1, 1, tzinfo=UTC)
-    return (delta.days * 86_400 + delta.seconds) * US_PER_SECOND + delta.microseconds
 
 
 def iso(us: int | None) -> str | None:

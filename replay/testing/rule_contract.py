@@ -24,21 +24,20 @@ from typing import Any
 import numpy as np
 
 from replay.errors import UsageError
-from replay.schema import CampaignArrays, CampaignSpec
+from replay.schema import US_PER_DAY, US_PER_HOUR, CampaignArrays, CampaignSpec
 
 T0_US = 1_700_006_400_000_000  # an invented Monday 00:00 UTC-ish origin
-HOUR_US = 3_600_000_000
 
 
 def contract_data(n: int = 6000, days: float = 4.0, seed: int = 3) -> CampaignArrays:
     """A small synthetic campaign: ``days`` of traffic with a daily cycle, two placements
     (0: second price, 1: first price), charge_prob in (0.2, 1]."""
     rng = np.random.default_rng(seed)
-    span = int(days * 24 * HOUR_US)
+    span = int(days * US_PER_DAY)
     # Daily cycle: accept times with probability ~ 1 + 0.8 sin(hour).
     t = rng.integers(0, span, 3 * n)
-    keep = rng.random(3 * n) < (1 + 0.8 * np.sin(2 * np.pi * (t % (24 * HOUR_US))
-                                                 / (24 * HOUR_US))) / 1.8
+    keep = rng.random(3 * n) < (1 + 0.8 * np.sin(2 * np.pi * (t % (US_PER_DAY))
+                                                 / (US_PER_DAY))) / 1.8
     ts = np.sort(t[keep][:n]).astype(np.int64) + T0_US
     m = ts.shape[0]
     plc = rng.integers(0, 2, m).astype(np.int32)
@@ -88,10 +87,10 @@ def check_rule(rule_cls: type, **params: Any) -> dict[str, object]:
         raise AssertionError("an unknown parameter must raise replay.errors.UsageError")
 
     data = contract_data()
-    cut = T0_US + 2 * 24 * HOUR_US
+    cut = T0_US + 2 * US_PER_DAY
     train, replay = data.window(None, cut), data.window(cut, None)
     spend_scale = float(replay.min_win_price.sum())
-    schedules = (Schedule(every_us=HOUR_US), Schedule(every_n=97))
+    schedules = (Schedule(every_us=US_PER_HOUR), Schedule(every_n=97))
     runs = 0
     # 2 + 3. budget and multipliers, tight and loose budgets, both charge modes
     for frac in (0.002, 0.05, 0.5):
