@@ -46,7 +46,7 @@ including ``value == 0``; ``value == 0`` with a positive price gives ``r = 0``. 
 NaN inputs raise ``ValueError`` (the ingest layer already rejects them).
 
 Memory: 24 bytes per stored row (allocated for ``capacity`` rows, touched as rows arrive)
-plus 4 MiB of buckets and 2 MiB of cache slots per index. Costs are summed in
+plus 5 MiB of buckets and 2 MiB of cache slots per index. Costs are summed in
 float64 in a different order than a full cumulative sum, so only a target within rounding
 (~1e-15 relative) of a cumulative sum can pick the neighbouring row.
 """
@@ -78,7 +78,9 @@ _I_LINKS = 7  # link records in use
 _BAND0 = 64  # initial half-width in buckets (~3 % of ratio either side)
 _BAND_MAX = 1 << 12
 # Bucket record layout in ``bucket`` (float64, 4 slots per bucket; int slots via ``bucket_i``).
-_B_COST = 0  # total cost (currency)
+# A bucket's total cost lives in the dense ``bcost`` instead: every insert adds to it at a
+# random bucket, and 8 bytes per bucket (1 MiB) stay in L2 where 32 would not.
+_B_SPARE = 0  # unused
 _B_COUNT = 1  # rows (int64 view)
 _B_HEAD = 2  # first row of the list, -1 = none (int64 view)
 _B_FIRST = 3  # the ratio if every row of the bucket has the same one, NaN if mixed
@@ -91,16 +93,17 @@ _L_NEXT = 1
 
 FtlIndex = namedtuple(
     "FtlIndex",
-    ["rows", "links", "bucket", "bucket_i", "scost", "state_i", "state_f",
+    ["rows", "links", "bucket", "bucket_i", "bcost", "scost", "state_i", "state_f",
      "cache_r", "cache_c", "cache_meta"],
 )
 FtlIndex.__doc__ = """Past rows bucketed by ratio (see the module docstring).
 
 rows: float64[3 * capacity], per stored row (ratio, cost, link to the next row of its
 bucket); rows_i: the same memory as int64. bucket: float64[4 * N_BUCKETS], per bucket
-(cost, count, head row, common ratio or NaN); bucket_i: the same memory as int64.
-scost: float64[N_SUPER] cost per super-bucket. state_i: int64[3] = (rows inserted, rows
-stored, bucket base key; -1 until the first positive ratio arrives). state_f: float64[2] =
+(spare, count, head row, common ratio or NaN); bucket_i: the same memory as int64.
+bcost: float64[N_BUCKETS] total cost per bucket; scost: float64[N_SUPER] per super-bucket.
+state_i: int64[3] = (rows inserted, rows stored, bucket base key; -1 until the first
+positive ratio arrives). state_f: float64[2] =
 (total cost, cost of rows with ratio 0). Rows with price 0 (ratio inf) and rows with value 0
 (ratio 0) are counted but not stored: they are never inside the search.
 cache_r, cache_c: float64[_SLOTS * slot size], the rows of recently queried buckets sorted by
@@ -125,7 +128,7 @@ def ftl_index_new(capacity: int) -> FtlIndex:
     meta[3 * _SLOTS] = 0
     return FtlIndex(
         rows, np.empty(2 * cap, np.int64), bucket, bucket_i,
-        np.zeros(N_SUPER, np.float64),
+        np.zeros(N_BUCKETS, np.float64), np.zeros(N_SUPER, np.float64),
         np.array([0, 0, -1, -1, -1, _BAND0, 0, 0], np.int64),
         np.zeros(2, np.float64),
         np.empty(_SLOTS * slot, np.float64),
@@ -143,10 +146,11 @@ def ftl_index_reset(index: FtlIndex) -> None:
     bucket_i = index.bucket_i
     for b in range(N_BUCKETS):
         q = 4 * b
-        bucket[q + _B_COST] = 0.0
+        bucket[q + _B_SPARE] = 0.0
         bucket_i[q + _B_COUNT] = 0
         bucket_i[q + _B_HEAD] = -1
         bucket[q + _B_FIRST] = 0.0
+    index.bcost[:] = 0.0
     index.scost[:] = 0.0
     st = index.state_i
     st[0] = 0
@@ -284,6 +288,7 @@ def ftl_insert(index: FtlIndex, value: np.ndarray, price: np.ndarray) -> None:
     n_links = index.state_i[_I_LINKS]
     bucket = index.bucket
     bucket_i = index.bucket_i
+    bcost = index.bcost
     scost = index.scost
     total = 0.0
     zero_cost = 0.0
@@ -313,7 +318,7 @@ def ftl_insert(index: FtlIndex, value: np.ndarray, price: np.ndarray) -> None:
         rows[o + _R_RATIO] = r
         rows[o + _R_COST] = p
         q = 4 * b
-        bucket[q + _B_COST] += p
+        bcost[b] += p
         scost[b >> _SUPER_BITS] += p
         if band_lo <= b <= band_hi:  # only band buckets keep their rows (see the docstring)
             _link(links, bucket, bucket_i, q, stored, r, n_links)
@@ -472,6 +477,7 @@ def ftl_lambda_for_spend(index: FtlIndex, target_spend: float) -> float:
     if index.state_i[1] == 0 or not (target < index.state_f[0] - index.state_f[1]):
         return 0.0  # the margin is among the ratio-0 rows
     scost = index.scost
+    bcost = index.bcost
     bucket = index.bucket
     bucket_i = index.bucket_i
     acc = 0.0
@@ -485,7 +491,7 @@ def ftl_lambda_for_spend(index: FtlIndex, target_spend: float) -> float:
     lowest = -1
     found = -1
     while b >= 0:
-        bc = bucket[4 * b + _B_COST]
+        bc = bcost[b]
         if bc > 0.0:
             lowest = b
             if acc + bc > target:
