@@ -164,6 +164,9 @@ def test_empty_and_bad_input():
         ftl_insert(idx, np.array([1.0]), np.array([-1.0]))
     with pytest.raises(ValueError, match=">= 0"):
         ftl_insert(idx, np.array([np.nan]), np.array([1.0]))
+    with pytest.raises(ValueError, match=">= 0"):  # a bad last row: nothing is inserted
+        ftl_insert(idx, np.array([1.0, 1.0]), np.array([1.0, -1.0]))
+    assert ftl_count(idx) == 0 and ftl_total_spend(idx) == 0.0
     with pytest.raises(ValueError, match="same length"):
         ftl_insert(idx, np.ones(2), np.ones(1))
     ftl_insert(idx, np.array([1.0, 2.0]), np.array([1.0, 1.0]))

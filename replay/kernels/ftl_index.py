@@ -84,6 +84,7 @@ _B_SPARE = 0  # unused
 _B_COUNT = 1  # rows (int64 view)
 _B_HEAD = 2  # first row of the list, -1 = none (int64 view)
 _B_FIRST = 3  # the ratio if every row of the bucket has the same one, NaN if mixed
+_PENDING = 4096  # rows per chunk of ftl_insert (its band rows are linked after the chunk)
 # Row record layout in ``rows`` (float64, 2 slots per row); band rows are also on a
 # bucket list of link records in ``links`` (int64, 2 slots: row, next link or -1).
 _R_RATIO = 0
@@ -265,6 +266,11 @@ def ftl_insert(index: FtlIndex, value: np.ndarray, price: np.ndarray) -> None:
     count = index.state_i[0]
     if count + m > index.rows.shape[0] // 2:
         raise ValueError("ftl_insert: index capacity exceeded (create it with a larger capacity)")
+    bad = False
+    for i in range(m):  # checked first: a bad row leaves the index as it was
+        bad |= not ((value[i] >= 0.0) & (price[i] >= 0.0))
+    if bad:
+        raise ValueError("ftl_insert: value and price must be >= 0 and not NaN")
     base = index.state_i[2]
     if base < 0:
         # Centre the 2**20 buckets (32 octaves of ratio) on this batch's mean log ratio;
@@ -295,35 +301,40 @@ def ftl_insert(index: FtlIndex, value: np.ndarray, price: np.ndarray) -> None:
     top = N_BUCKETS - 1
     band_lo = index.state_i[_I_BAND_LO]
     band_hi = index.state_i[_I_BAND_HI]
-    for i in range(m):
-        v = value[i]
-        p = price[i]
-        if not (v >= 0.0) or not (p >= 0.0):
-            raise ValueError("ftl_insert: value and price must be >= 0 and not NaN")
-        if p == 0.0:
-            continue  # ratio inf, cost 0: always taken, never the marginal row
-        r = v / p
-        if r == np.inf:  # a subnormal price: as free as price 0
-            continue
-        total += p
-        if r == 0.0:
-            zero_cost += p  # ratio 0 ranks last; kept as one sum
-            continue
-        b = (f64_bits(r) >> _SHIFT) - base
-        if b < 0:
-            b = 0
-        elif b > top:
-            b = top
-        o = 2 * stored
-        rows[o + _R_RATIO] = r
-        rows[o + _R_COST] = p
-        q = 4 * b
-        bcost[b] += p
-        scost[b >> _SUPER_BITS] += p
-        if band_lo <= b <= band_hi:  # only band buckets keep their rows (see the docstring)
-            _link(links, bucket, bucket_i, q, stored, r, n_links)
+    # Only band buckets keep their rows (see the docstring). The rows are bucketed in
+    # chunks; each chunk lists its band rows without a jump and links them afterwards:
+    # measured, a jump on the band (taken by a few percent of rows) made inserts twice as
+    # slow, although it was rarely taken.
+    pending = np.empty(min(m, _PENDING), np.int64)
+    for c0 in range(0, m, _PENDING):
+        n_band = 0
+        for i in range(c0, min(c0 + _PENDING, m)):
+            v = value[i]
+            p = price[i]
+            if p == 0.0:
+                continue  # ratio inf, cost 0: always taken, never the marginal row
+            r = v / p
+            if r == np.inf:  # a subnormal price: as free as price 0
+                continue
+            total += p
+            if r == 0.0:
+                zero_cost += p  # ratio 0 ranks last; kept as one sum
+                continue
+            b = min(max((f64_bits(r) >> _SHIFT) - base, 0), top)
+            o = 2 * stored
+            rows[o + _R_RATIO] = r
+            rows[o + _R_COST] = p
+            bcost[b] += p
+            scost[b >> _SUPER_BITS] += p
+            pending[n_band] = stored
+            n_band += (band_lo <= b) & (b <= band_hi)
+            stored += 1
+        for k in range(n_band):
+            j = pending[k]
+            r = rows[2 * j + _R_RATIO]
+            b = min(max((f64_bits(r) >> _SHIFT) - base, 0), top)
+            _link(links, bucket, bucket_i, 4 * b, j, r, n_links)
             n_links += 1
-        stored += 1
     index.state_i[0] = count + m
     index.state_i[1] = stored
     index.state_i[_I_LINKS] = n_links
