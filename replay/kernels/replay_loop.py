@@ -115,7 +115,7 @@ SERIES_COLUMNS = ("update", "ts_us", "lambda", "mu", "auctions", "wins", "result
                   "expected_spend", "target_spend", "cum_spend", "cum_target")
 
 
-#: Rows per chunk of the fast path's two passes (its list of won rows stays in L1).
+#: Rows per chunk of the fast path's three passes (its lists of won rows stay in L1).
 WIN_CHUNK = 1024
 
 ACCEL_PER_OCTAVE = 128  # grid cells per factor 2 of w in the shading lookup accelerator
