@@ -115,15 +115,19 @@ def test_sampled_charges_are_unbiased() -> None:
 
 
 @pytest.mark.parametrize("cls", list_rules(), ids=lambda c: c.name)
-@pytest.mark.parametrize("schedule", [Schedule(every_us=HOUR), Schedule(every_n=37)],
-                         ids=["hourly", "every37"])
+# every1: the fused loop runs one-row intervals in its per-request stretch (series buckets
+# of several updates, series_max below); the generic path never does.
+@pytest.mark.parametrize("schedule", [Schedule(every_us=HOUR), Schedule(every_n=37),
+                                      Schedule(every_n=1)], ids=["hourly", "every37", "every1"])
 def test_fused_and_generic_paths_identical(cls, schedule) -> None:
     data = contract_data(n=5000, seed=5)
     train, replay = _split(data)
     spec = CampaignSpec("c", budget=0.05 * float(replay.min_win_price.sum()),
                         max_cost_per_result=0.05)
-    a = replay_campaign(replay, train, spec, cls(), schedule, "sampled", 3, path="fused")
-    b = replay_campaign(replay, train, spec, cls(), schedule, "sampled", 3, path="generic")
+    a = replay_campaign(replay, train, spec, cls(), schedule, "sampled", 3, path="fused",
+                        series_max=97)
+    b = replay_campaign(replay, train, spec, cls(), schedule, "sampled", 3, path="generic",
+                        series_max=97)
     assert np.array_equal(a.won, b.won)
     assert a.series.equals(b.series)
     for key, x in a.totals.items():
@@ -202,6 +206,30 @@ def test_poison_check_catches_a_leak(monkeypatch) -> None:
     monkeypatch.setattr(engine, "_past_rows", lambda arr, i, j: arr[i:].copy())
     with pytest.raises(AssertionError, match="look-ahead"):
         check_rule(mod.Peek)
+
+
+def test_numba_update_that_treats_fb_as_an_array_gets_one_clear_line() -> None:
+    from numba import njit
+
+    from replay.rules.base import BidRule
+
+    @njit
+    def sized_update(state, params, fb):
+        state[0] = state[0] * fb.shape[0] / rl.FB_SIZE  # fb is a tuple in the loop
+
+    class Sized(BidRule):
+        name = "sized"
+        numba_update = sized_update
+
+        def start(self):
+            self.state_ = np.array([1.0, 0.0, np.nan])
+            return self.state_
+
+    data = contract_data(n=500)
+    train, replay = _split(data)
+    with pytest.raises(UsageError, match=r"rule 'sized': its numba_update .* tuple of 20"):
+        replay_campaign(replay, train, CampaignSpec("c", budget=1.0), Sized(),
+                        Schedule(every_n=10))
 
 
 def test_bad_input_errors() -> None:
@@ -319,8 +347,9 @@ def test_win_thresholds_match_shading_every_row(seed: int, m: float) -> None:
 
 @pytest.mark.parametrize("rule", ["fixed-multiplier", "dual-mirror", "ftl", "fixed-bid"])
 @pytest.mark.parametrize("charges", ["expected", "sampled"])
-# every_n=2500: intervals span several of the fast path's chunks (rl.WIN_CHUNK rows).
-@pytest.mark.parametrize("every_n", [97, 2500])
+# every_n=2500: intervals span several of the fast path's chunks (rl.WIN_CHUNK rows);
+# every_n=1: one-row intervals, in the per-request stretch between series buckets.
+@pytest.mark.parametrize("every_n", [1, 97, 2500])
 def test_threshold_path_identical_to_per_row_shading(rule: str, charges: str,
                                                      every_n: int) -> None:
     """The loop with win thresholds returns bit-identical totals, series and wins to the
@@ -329,7 +358,7 @@ def test_threshold_path_identical_to_per_row_shading(rule: str, charges: str,
     train, rows = _split(data)
     spec = CampaignSpec("c", budget=0.3 * float(rows.min_win_price.sum()))
     out = [engine.prepare_replay(rows, train, spec, make_rule(rule, {}),
-                                 Schedule(every_n=every_n), charges, 3,
+                                 Schedule(every_n=every_n), charges, 3, series_max=200,
                                  thresholds=flag).run() for flag in (True, False)]
     _assert_same_replay(*out)
 
@@ -358,8 +387,49 @@ def test_threshold_path_identical_when_budget_runs_out_mid_chunk(charges: str) -
     _assert_same_replay(fast, slow)
 
 
+@pytest.mark.parametrize("charges", ["expected", "sampled"])
+def test_per_request_stretch_stops_where_the_budget_runs_out(charges: str) -> None:
+    """One row per update, the budget spent inside a series bucket: the fused loop's
+    per-request stretch stops at that row exactly as the generic path (which never enters
+    the stretch) and the loop that shades every row."""
+    data = contract_data(n=6000)
+    train, rows = _split(data)
+    rule = {"multiplier": 1e6}  # wins nearly every row: spend grows with the row index
+
+    def run(budget: float, **options):
+        return engine.prepare_replay(rows, train, CampaignSpec("c", budget=budget),
+                                     make_rule("fixed-multiplier", rule), Schedule(every_n=1),
+                                     charges, 3, series_max=50, **options).run()
+
+    budget = 0.55 * float(run(1e12).totals["spend"])
+    fused = run(budget)
+    group = -(-len(rows) // 50)
+    row = int(np.searchsorted(rows.ts_us, fused.totals["exhausted_at_us"]))
+    assert len(rows) // 3 < row < len(rows) - group and (row + 1) % group != 0
+    _assert_same_replay(fused, run(budget, path="generic"))
+    _assert_same_replay(fused, run(budget, thresholds=False))
+
+
 def _assert_same_replay(fast, slow) -> None:
     assert fast.totals == slow.totals
     assert fast.series.equals(slow.series)
     assert np.array_equal(fast.won, slow.won)
     assert fast.placements.equals(slow.placements)
+
+
+def test_feedback_tuple_puts_each_field_at_its_index() -> None:
+    """The fused loop hands updates ``feedback_tuple(...)``; rules index it with ``FB_*``."""
+    names = {"k": rl.FB_K, "auctions": rl.FB_AUCTIONS, "wins": rl.FB_WINS,
+             "results": rl.FB_RESULTS, "spend": rl.FB_SPEND, "expected": rl.FB_EXPECTED_SPEND,
+             "target": rl.FB_TARGET, "cum": rl.FB_CUM_SPEND, "cum_e": rl.FB_CUM_EXPECTED,
+             "cum_target": rl.FB_CUM_TARGET, "cum_r": rl.FB_CUM_RESULTS,
+             "remaining": rl.FB_REMAINING, "t_start": rl.FB_T_START, "t_end": rl.FB_T_END,
+             "budget": rl.FB_BUDGET, "remaining_share": rl.FB_REMAINING_SHARE,
+             "rows_seen": rl.FB_ROWS_SEEN, "norm": rl.FB_NORM, "exhausted": rl.FB_EXHAUSTED,
+             "expected_auctions": rl.FB_EXPECTED_AUCTIONS}
+    assert sorted(names.values()) == list(range(rl.FB_SIZE))
+    values = {name: 10.0 + i for i, name in enumerate(names)}
+    out = rl.feedback_tuple(**values)
+    assert len(out) == rl.FB_SIZE
+    for name, index in names.items():
+        assert out[index] == values[name], name

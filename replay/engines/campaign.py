@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 import polars as pl
+from numba.core.errors import TypingError
 
 from replay.engines.windows import parse_duration
 from replay.errors import UsageError
@@ -341,9 +342,17 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
             from replay.kernels.ftl_index import ftl_index_new
 
             index = rule.index_ if rule.uses_index else ftl_index_new(1)
-            rl.replay_fused(type(rule).numba_update, rule.state_,
-                            np.ascontiguousarray(rule.params_, np.float64), index,
-                            bool(rule.uses_index), *common, *tail, 0, total_k)
+            try:
+                rl.replay_fused(type(rule).numba_update, rule.state_,
+                                np.ascontiguousarray(rule.params_, np.float64), index,
+                                bool(rule.uses_index), *common, *tail, 0, total_k)
+            except TypingError as exc:
+                first = next((x for x in str(exc).splitlines() if x.strip()), "")
+                raise UsageError(
+                    f"rule {rule.name!r}: its numba_update does not compile in the replay "
+                    f"loop, where fb is a tuple of {rl.FB_SIZE} floats (read it with the "
+                    f"FB_* indexes only; state and params are float64 arrays); numba says: "
+                    f"{first.strip()}") from None
             _check_state(rule, total_k - 1)
         else:
             from replay.kernels.ftl_index import ftl_index_new

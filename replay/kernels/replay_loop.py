@@ -16,9 +16,17 @@ the end of interval k-1 from the feedback vector ``fb`` (indexes ``FB_*`` below)
 rows before it: a rule cannot see the future.
 
 ``fused_loop(update)`` is ONE compiled loop with the rule's ``@njit`` update inlined at
-every boundary (compiled once per update function and process). The engine's generic path
-(a rule with a Python ``update``) runs the same loop one interval per call with the no-op
-``no_update`` and calls the Python update in between, so both paths share every line.
+every boundary (compiled once per update function and process). The update receives the
+feedback as a tuple (``feedback_tuple``, indexed by the same ``FB_*``), so the fields it
+does not read cost nothing; the loop copies the last one into ``fb`` when a call ends. The
+engine's generic path (a rule with a Python ``update``) runs the same loop one interval per
+call with the no-op ``no_update``, reads ``fb`` and calls the Python update in between.
+
+Every request (``every_n == 1``, a numba update, win thresholds): the loop runs the rows
+between series-bucket ends in a "per-request stretch", one row per update with a jump on
+the win and no chunk machinery; the bucket's last row, the call's last and the replay's
+last go through the interval body. The stretch does what the body does for a one-row
+interval, bit for bit (tests compare it with the generic path, which never enters it).
 
 Wins: with ``win_thresholds`` (step tables, the default empirical landscape) a row is won
 iff ``w >= need[row]``, the smallest budget-adjusted value whose shaded bid reaches the
@@ -362,13 +370,29 @@ def n_intervals(n, every_n, every_us, flight_start, flight_end):
     return max(1, (span + every_us - 1) // every_us)
 
 
+@njit(cache=True, nogil=True, inline="always")
+def feedback_tuple(k, auctions, wins, results, spend, expected, target, cum, cum_e, cum_target,
+                   cum_r, remaining, t_start, t_end, budget, remaining_share, rows_seen, norm,
+                   exhausted, expected_auctions):
+    """The feedback of one interval as a tuple of ``FB_SIZE`` floats in ``FB_*`` order.
+
+    The fused loop hands the update this tuple rather than the ``fb`` array: a tuple lives in
+    registers, so fields the update never reads are never computed and the ones it reads
+    need no store and reload (an array is memory every other store may alias)."""
+    return (float(k), float(auctions), float(wins), float(results), float(spend),
+            float(expected), float(target), float(cum), float(cum_e), float(cum_target),
+            float(cum_r), float(remaining), float(t_start), float(t_end), float(budget),
+            float(remaining_share), float(rows_seen), float(norm), float(exhausted),
+            float(expected_auctions))
+
+
 _FUSED: dict[object, object] = {}
 
 
 def fused_loop(update):
     """The replay loop compiled with ``update`` (an ``@njit`` function
-    ``update(state, params, fb)``) inlined at each boundary; built once per update
-    function and process.
+    ``update(state, params, fb)``, ``fb`` a tuple of ``FB_SIZE`` floats there) inlined at
+    each boundary; built once per update function and process.
 
     Inlining matters: a call to a separately compiled function passing three arrays costs
     more (reference counting) than a per-request rule's whole update. No cache=True:
@@ -396,8 +420,9 @@ def _make_fused(update_inline):
                      maxlog, grid, rec, gidx, unit, mask, fast, need, above_w, acc, won,
                      pl_acc, series, group, fb, k_begin, k_end):
         """Replay intervals ``k_begin..k_end-1`` in one compiled loop, calling
-        ``update(state, params, fb)`` at each boundary; the position (row, time) carries over
-        in ``acc`` so the generic path can run one interval per call with a no-op update.
+        ``update(state, params, feedback_tuple(...))`` at each boundary; the position (row,
+        time) carries over in ``acc`` and the last feedback is left in ``fb``, so the
+        generic path can run one interval per call with a no-op update.
 
         Intervals: ``every_n > 0``: rows i..i+every_n, ending at the next row's ts (the flight
         end after the last row); else ``[flight_start + k*every_us, +every_us)``. ``fast``:
@@ -435,9 +460,104 @@ def _make_fused(update_inline):
         s_spend = series[srow, SER_SPEND] if spos > 0 else 0.0
         s_expected = series[srow, SER_EXPECTED] if spos > 0 else 0.0
         s_target = series[srow, SER_TARGET] if spos > 0 else 0.0
-        fb[FB_BUDGET] = budget
-        fb[FB_EXPECTED_AUCTIONS] = expected_auctions
-        for k in range(k_begin, k_end):
+        fbt = feedback_tuple(0, 0, 0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0,
+                             budget, 0.0, 0.0, 0.0, 0.0, expected_auctions)
+        # One row per update, the rule's own numba update, win thresholds: the per-request
+        # stretch below runs such rows without the chunk machinery.
+        stretch = every_n == 1 and fast and not feed_index
+        k = k_begin
+        while k < k_end:
+            if stretch and k > 0 and cum < budget and spos < group - 1 and k + 1 < k_end \
+                    and i + 1 < n:
+                # Rows k..k_stop-1, one per interval: stops before the last row of the
+                # series bucket, of the call and of the replay (the interval body below
+                # writes those) or after the row that spends the budget. Everything here
+                # is what the body below does for an interval of one row, bit for bit; a
+                # test compares it with the generic path, which never takes this branch.
+                k_stop = min(k_end - 1, k + (group - 1 - spos), n - 1 - i + k)
+                while k < k_stop:
+                    r = _U(i)
+                    lam = state[STATE_LAMBDA]
+                    mu = state[STATE_MU]
+                    scale = (1.0 + mu * cap) / (max(lam, LAMBDA_FLOOR) + mu)
+                    p = _U(placement[r])
+                    w = pbid[p] if fixed_bid else value[r] * scale
+                    above = np.int64(w > above_w[p])
+                    spend = 0.0
+                    expected = 0.0
+                    results = 0.0
+                    wins = 0
+                    min_cost = 0.0
+                    if w >= need[r]:  # a jump: the CPU runs ahead of the win (see DEVELOPERS)
+                        c = price[r]
+                        paid = c
+                        if first_price[r]:
+                            b = w
+                            if not shade_on:
+                                pass
+                            elif grid[p, G_SLOW]:
+                                b = shade(w, np.int64(p), offsets, knots_w, knots_b, linear,
+                                          tab_fp)
+                                if b > w:
+                                    b = w
+                            else:  # as in pass 2 below
+                                b, cell = grid_lookup(w, p, grid, rec, mask)
+                                if w > rec[cell, R_NEXT]:
+                                    h = gidx[cell] + 2
+                                    while h < grid[p, G_HI] and knots_w[h] < w:
+                                        h += 1
+                                    b = knots_b[h - 1]
+                                b = pick(mask[np.int64(b < w)], b, w)
+                            paid = b
+                        if sampled:
+                            q = charge_prob[r]
+                            ch = (paid / q) * unit[np.int64(uniforms[r] < q)]
+                        else:
+                            ch = paid
+                        won[r] = True
+                        wins = 1
+                        results = value[r]
+                        cum_r += value[r]
+                        spend = ch
+                        cum += ch
+                        expected = paid
+                        cum_e += paid
+                        min_cost = c
+                        pl_acc[p, 0] += 1.0
+                        pl_acc[p, 1] += value[r]
+                        pl_acc[p, 2] += ch
+                        pl_acc[p, 3] += paid
+                        last_ch = ch
+                        if cum >= budget and ex_ts < 0:
+                            ex_ts = float(ts[r])
+                    t_end = float(ts[i + 1])
+                    f1, cpos = _curve_from(t_end, curve_t, curve_f, cpos)
+                    target = budget * (f1 - f_prev)
+                    tot_wins += wins
+                    tot_bids += 1
+                    tot_above += above
+                    tot_min_cost += min_cost
+                    rows_seen += 1
+                    s_auctions += 1
+                    s_wins += wins
+                    s_results += results
+                    s_spend += spend
+                    s_expected += expected
+                    s_target += target
+                    spos += 1
+                    fbt = feedback_tuple(k, 1, wins, results, spend, expected, target, cum, cum_e,
+                                         budget * f1, cum_r, budget - cum, t_prev, t_end, budget,
+                                         1.0 - f1, rows_seen,
+                                         norm if norm > 0.0 else max(target, 1e-300),
+                                         1.0 if cum >= budget else 0.0, expected_auctions)
+                    f_prev = f1
+                    i += 1
+                    t_prev = t_end
+                    update_inline(state, params, fbt)
+                    k += 1
+                    if cum >= budget:
+                        break
+                continue
             t_start = float(flight_start) if k == 0 else t_prev
             lam = state[STATE_LAMBDA]
             mu = state[STATE_MU]
@@ -597,24 +717,10 @@ def _make_fused(update_inline):
             tot_above += above
             tot_min_cost += min_cost
             rows_seen += j - i
-            fb[FB_K] = k
-            fb[FB_AUCTIONS] = j - i
-            fb[FB_WINS] = wins
-            fb[FB_RESULTS] = results
-            fb[FB_SPEND] = spend
-            fb[FB_EXPECTED_SPEND] = expected
-            fb[FB_TARGET] = target
-            fb[FB_CUM_SPEND] = cum
-            fb[FB_CUM_EXPECTED] = cum_e
-            fb[FB_CUM_TARGET] = budget * f1
-            fb[FB_CUM_RESULTS] = cum_r
-            fb[FB_REMAINING] = budget - cum
-            fb[FB_T_START] = t_start
-            fb[FB_T_END] = t_end
-            fb[FB_REMAINING_SHARE] = 1.0 - f1
-            fb[FB_ROWS_SEEN] = rows_seen
-            fb[FB_NORM] = norm if norm > 0.0 else max(target, 1e-300)
-            fb[FB_EXHAUSTED] = 1.0 if cum >= budget else 0.0
+            fbt = feedback_tuple(k, j - i, wins, results, spend, expected, target, cum, cum_e,
+                                 budget * f1, cum_r, budget - cum, t_start, t_end, budget,
+                                 1.0 - f1, rows_seen, norm if norm > 0.0 else max(target, 1e-300),
+                                 1.0 if cum >= budget else 0.0, expected_auctions)
             # the series: one row per bucket of ``group`` updates (``update`` = the last)
             s_auctions += j - i
             s_wins += wins
@@ -649,9 +755,13 @@ def _make_fused(update_inline):
                 ftl_insert(index, value[i:j], price[i:j])
             i = j
             t_prev = t_end
-            update_inline(state, params, fb)
+            update_inline(state, params, fbt)
             if feed_index and not np.isnan(state[STATE_QUERY]):
                 state[STATE_LAMBDA] = ftl_lambda_for_spend(index, state[STATE_QUERY])
+            k += 1
+        if k_end > k_begin:  # the last interval's feedback, read by the generic path
+            for x in range(FB_SIZE):
+                fb[x] = fbt[x]
         acc[ACC_POS] = i
         acc[ACC_T_END] = t_prev
         acc[ACC_F_END] = f_prev

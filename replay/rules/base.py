@@ -12,9 +12,11 @@ A rule is a small estimator in the scikit-learn sense:
 The engine bids ``w = value * (1 + mu * C) / (max(lambda, 1e-12) + mu)`` (currency per
 impression; ``C`` the cost-per-result cap, 0 without one), shaded on first-price rows.
 
-A built-in rule also ships a numba function ``numba_update(state, params, fb)`` (fb indexes:
-``replay.kernels.replay_loop.FB_*``) so the replay runs as one compiled loop; a rule
-written in plain Python only overrides ``update`` and runs through the generic path.
+A built-in rule also ships a numba function ``numba_update(state, params, fb)`` so the
+replay runs as one compiled loop. ``fb`` is read-only: index it with
+``replay.kernels.replay_loop.FB_*`` only, since the compiled loop passes a tuple of
+``FB_SIZE`` floats (an array when ``update`` calls it from Python). A rule written in plain
+Python only overrides ``update`` and runs through the generic path.
 """
 
 from __future__ import annotations
@@ -215,8 +217,9 @@ class IntervalFeedback:
     """What a rule learns at the end of interval k (all of it from rows before the decision).
 
     Spends in currency, results in the campaign's result unit, times in microseconds UTC.
-    ``fb`` is the same information as the float64 vector read by numba updates
-    (indexes ``replay.kernels.replay_loop.FB_*``). ``value``/``min_win_price`` are the
+    ``fb`` is the same information as a float64 vector (indexes
+    ``replay.kernels.replay_loop.FB_*``; the compiled loop gives numba updates these fields
+    as a tuple). ``value``/``min_win_price`` are the
     interval's rows (views; past rows only).
     """
 
