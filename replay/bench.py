@@ -48,11 +48,15 @@ class BenchConfig:
     #: of ``large_campaigns`` campaigns holding this many rows in all.
     large_rows: int = 100_000_000
     large_campaigns: int = 100
+    #: Series rows kept per rule replay (None: the engine's default). Quick mode keeps one
+    #: per update, so every-request cases run without the per-request stretch and its loop
+    #: build is not compiled (about 9 s per rule): quick checks the command, not speed.
+    series_max: int | None = None
 
     @classmethod
     def quick(cls) -> BenchConfig:
         return cls(rows=200_000, ingest_rows=100_000, repeats=2, shared_process=True,
-                   large_rows=200_000, large_campaigns=2)
+                   large_rows=200_000, large_campaigns=2, series_max=200_000)
 
 
 def _peak_rss_mb() -> float:
@@ -275,7 +279,8 @@ def _case_hindsight_curve(cfg: BenchConfig) -> dict[str, object]:
 def _case_rule(cfg: BenchConfig, rule: str, schedule: str) -> dict[str, object]:
     from replay.bench_rules import prepare_rule_case
 
-    run, rows, prepare_s = prepare_rule_case(rule, cfg.rows, schedule, cfg.seed)
+    run, rows, prepare_s = prepare_rule_case(rule, cfg.rows, schedule, cfg.seed,
+                                             series_max=cfg.series_max)
     seconds = _median_seconds(run, cfg.repeats)
     return _result(rows, seconds, rule=rule, schedule=schedule, prepare_seconds=prepare_s)
 

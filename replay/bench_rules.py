@@ -38,11 +38,11 @@ def _schedule(name: str, n_rows: int) -> Schedule:
     raise ValueError(f"schedule {name!r}: allowed: {', '.join(SCHEDULES)}")
 
 
-def prepare_rule_case(rule_name: str, n_rows: int, schedule: str,
-                      seed: int = 0) -> tuple[Callable[[], object], int, float]:
+def prepare_rule_case(rule_name: str, n_rows: int, schedule: str, seed: int = 0,
+                      series_max: int | None = None) -> tuple[Callable[[], object], int, float]:
     """``(run, rows, prepare_seconds)``: a callable replaying ``n_rows`` rows once, the row
     count, and the seconds the once-per-campaign preparation took (training-window fits,
-    win thresholds)."""
+    win thresholds). ``series_max``: see ``prepare_replay`` (None: its default)."""
     from replay.scenario import synthetic_campaign
 
     total = int(n_rows / 0.9)
@@ -53,8 +53,9 @@ def prepare_rule_case(rule_name: str, n_rows: int, schedule: str,
     spec = CampaignSpec(data.campaign_id, budget=0.3 * float(replay.min_win_price.sum()))
     params = PER_REQUEST_PARAMS.get(rule_name, {}) if schedule == "per_request" else {}
     t0 = time.perf_counter()
+    options = {} if series_max is None else {"series_max": series_max}
     prepared = prepare_replay(replay, train, spec, make_rule(rule_name, params),
-                              _schedule(schedule, len(replay)), "expected", seed)
+                              _schedule(schedule, len(replay)), "expected", seed, **options)
     return prepared.run, len(replay), time.perf_counter() - t0
 
 

@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 import polars as pl
+from numba import types as nb_types
 from numba.core.errors import TypingError
 
 from replay.engines.windows import parse_duration
@@ -336,21 +337,28 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
         tail = (capf, bool(rule.fixed_bid), pbid, shade_on, *shade_args, UNIT, MASK, fast, need,
                 above_w, acc, won, pl_acc, series, group, fb)
         if use_fused:
-            if type(rule).numba_update is None:
-                raise UsageError(f"rule {rule.name!r} has no numba_update; use "
-                                 "path='generic'")
+            if not hasattr(type(rule).numba_update, "compile"):
+                raise UsageError(f"rule {rule.name!r}: numba_update must be an @njit function "
+                                 "(a rule without one runs with path='generic')")
             from replay.kernels.ftl_index import ftl_index_new
 
             index = rule.index_ if rule.uses_index else ftl_index_new(1)
             try:
+                # Per-request replays hand the update a tuple: check that it takes one on
+                # every schedule, so a rule never fails only on long every-request runs.
+                type(rule).numba_update.compile(_UPDATE_WITH_TUPLE)
+                # The loop build with the per-request stretch, only where the stretch runs:
+                # one row per update, win thresholds, no index, series buckets of 2+ rows.
+                one_row = every_n == 1 and fast and not rule.uses_index and group > 1
                 rl.replay_fused(type(rule).numba_update, rule.state_,
                                 np.ascontiguousarray(rule.params_, np.float64), index,
-                                bool(rule.uses_index), *common, *tail, 0, total_k)
+                                bool(rule.uses_index), *common, *tail, 0, total_k,
+                                one_row=one_row)
             except TypingError as exc:
                 first = next((x for x in str(exc).splitlines() if x.strip()), "")
                 raise UsageError(
                     f"rule {rule.name!r}: its numba_update does not compile in the replay "
-                    f"loop, where fb is a tuple of {rl.FB_SIZE} floats (read it with the "
+                    f"loop, where fb may be a tuple of {rl.FB_SIZE} floats (read it with the "
                     f"FB_* indexes only; state and params are float64 arrays); numba says: "
                     f"{first.strip()}") from None
             _check_state(rule, total_k - 1)
@@ -372,6 +380,11 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
                       context, auctions_per_placement)
 
     return PreparedReplay(rule=rule, context=context, rows=rows, run=run)
+
+
+#: ``numba_update(state, params, fb)`` as the per-request stretch calls it.
+_UPDATE_WITH_TUPLE = (nb_types.float64[::1], nb_types.float64[::1],
+                      nb_types.UniTuple(nb_types.float64, rl.FB_SIZE))
 
 
 def _past_rows(arr: np.ndarray, i: int, j: int) -> np.ndarray:

@@ -16,17 +16,20 @@ the end of interval k-1 from the feedback vector ``fb`` (indexes ``FB_*`` below)
 rows before it: a rule cannot see the future.
 
 ``fused_loop(update)`` is ONE compiled loop with the rule's ``@njit`` update inlined at
-every boundary (compiled once per update function and process). The update receives the
-feedback as a tuple (``feedback_tuple``, indexed by the same ``FB_*``), so the fields it
-does not read cost nothing; the loop copies the last one into ``fb`` when a call ends. The
-engine's generic path (a rule with a Python ``update``) runs the same loop one interval per
-call with the no-op ``no_update``, reads ``fb`` and calls the Python update in between.
+every boundary (compiled once per update function and process). The engine's generic path
+(a rule with a Python ``update``) runs the same loop one interval per call with the no-op
+``no_update``, reads ``fb`` and calls the Python update in between.
 
-Every request (``every_n == 1``, a numba update, win thresholds): the loop runs the rows
-between series-bucket ends in a "per-request stretch", one row per update with a jump on
-the win and no chunk machinery; the bucket's last row, the call's last and the replay's
-last go through the interval body. The stretch does what the body does for a one-row
-interval, bit for bit (tests compare it with the generic path, which never enters it).
+Every request (``every_n == 1``, a numba update, win thresholds, series buckets of several
+updates): the build ``fused_loop(update, one_row=True)`` runs the rows between
+series-bucket ends in a "per-request stretch", one row per update with a jump on the win
+and no chunk machinery, and hands the update its feedback as a tuple
+(``feedback_tuple``, indexed by the same ``FB_*``: fields it does not read cost nothing,
+the ones it reads need no store and reload). The bucket's last row, the call's last and
+the replay's last go through the interval body, which fills ``fb``. The stretch does what
+the body does for a one-row interval, bit for bit (tests compare it with the generic path,
+which never enters it). It is its own build because its code, even unused, slowed the
+batch passes by about 8 %.
 
 Wins: with ``win_thresholds`` (step tables, the default empirical landscape) a row is won
 iff ``w >= need[row]``, the smallest budget-adjusted value whose shaded bid reaches the
@@ -376,9 +379,10 @@ def feedback_tuple(k, auctions, wins, results, spend, expected, target, cum, cum
                    exhausted, expected_auctions):
     """The feedback of one interval as a tuple of ``FB_SIZE`` floats in ``FB_*`` order.
 
-    The fused loop hands the update this tuple rather than the ``fb`` array: a tuple lives in
-    registers, so fields the update never reads are never computed and the ones it reads
-    need no store and reload (an array is memory every other store may alias)."""
+    The per-request stretch hands the update this tuple rather than the ``fb`` array: a
+    tuple lives in registers, so fields the update never reads are never computed and the
+    ones it reads need no store and reload (an array is memory every other store may
+    alias)."""
     return (float(k), float(auctions), float(wins), float(results), float(spend),
             float(expected), float(target), float(cum), float(cum_e), float(cum_target),
             float(cum_r), float(remaining), float(t_start), float(t_end), float(budget),
@@ -389,29 +393,35 @@ def feedback_tuple(k, auctions, wins, results, spend, expected, target, cum, cum
 _FUSED: dict[object, object] = {}
 
 
-def fused_loop(update):
+def fused_loop(update, one_row: bool = False):
     """The replay loop compiled with ``update`` (an ``@njit`` function
-    ``update(state, params, fb)``, ``fb`` a tuple of ``FB_SIZE`` floats there) inlined at
-    each boundary; built once per update function and process.
+    ``update(state, params, fb)``: ``fb`` the float64 array, or in the per-request stretch a
+    tuple of ``FB_SIZE`` floats) inlined at each boundary; built once per (update function,
+    ``one_row``) and process.
+
+    ``one_row``: also compile the per-request stretch (see the module docstring). A separate
+    build because its code, even never run, slowed the batch passes by about 8 % (measured
+    in interleaved runs; LLVM allocates registers over the whole function).
 
     Inlining matters: a call to a separately compiled function passing three arrays costs
     more (reference counting) than a per-request rule's whole update. No cache=True:
     numba cannot cache a closure over another function, so compiling costs a few seconds
     per rule per process.
     """
-    loop = _FUSED.get(update)
+    key = (update, bool(one_row))
+    loop = _FUSED.get(key)
     if loop is None:
-        loop = _make_fused(update)
-        _FUSED[update] = loop
+        loop = _make_fused(update, bool(one_row))
+        _FUSED[key] = loop
     return loop
 
 
-def replay_fused(update, *args):
-    """``fused_loop(update)(*args)``: see ``_make_fused`` for the arguments."""
-    return fused_loop(update)(*args)
+def replay_fused(update, *args, one_row: bool = False):
+    """``fused_loop(update, one_row)(*args)``: see ``_make_fused`` for the arguments."""
+    return fused_loop(update, one_row)(*args)
 
 
-def _make_fused(update_inline):
+def _make_fused(update_inline, one_row):
     @njit(nogil=True)
     def replay_fused_loop(state, params, index, feed_index, ts, value, price, charge_prob,
                      placement, first_price, uniforms, sampled, every_n, every_us, flight_start,
@@ -420,9 +430,10 @@ def _make_fused(update_inline):
                      maxlog, grid, rec, gidx, unit, mask, fast, need, above_w, acc, won,
                      pl_acc, series, group, fb, k_begin, k_end):
         """Replay intervals ``k_begin..k_end-1`` in one compiled loop, calling
-        ``update(state, params, feedback_tuple(...))`` at each boundary; the position (row,
-        time) carries over in ``acc`` and the last feedback is left in ``fb``, so the
-        generic path can run one interval per call with a no-op update.
+        ``update(state, params, fb)`` at each boundary (``feedback_tuple(...)`` in the
+        per-request stretch); the position (row, time) carries over in ``acc`` and the last
+        feedback is left in ``fb``, so the generic path can run one interval per call with a
+        no-op update.
 
         Intervals: ``every_n > 0``: rows i..i+every_n, ending at the next row's ts (the flight
         end after the last row); else ``[flight_start + k*every_us, +every_us)``. ``fast``:
@@ -460,15 +471,17 @@ def _make_fused(update_inline):
         s_spend = series[srow, SER_SPEND] if spos > 0 else 0.0
         s_expected = series[srow, SER_EXPECTED] if spos > 0 else 0.0
         s_target = series[srow, SER_TARGET] if spos > 0 else 0.0
-        fbt = feedback_tuple(0, 0, 0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0,
-                             budget, 0.0, 0.0, 0.0, 0.0, expected_auctions)
         # One row per update, the rule's own numba update, win thresholds: the per-request
         # stretch below runs such rows without the chunk machinery.
+        fb[FB_BUDGET] = budget
+        fb[FB_EXPECTED_AUCTIONS] = expected_auctions
         stretch = every_n == 1 and fast and not feed_index
         k = k_begin
         while k < k_end:
-            if stretch and k > 0 and cum < budget and spos < group - 1 and k + 1 < k_end \
-                    and i + 1 < n:
+            # ``one_row`` first: a constant of the build, so numba drops the block (its
+            # typing and compile time) from the other build
+            if one_row and stretch and k > 0 and cum < budget and spos < group - 1 \
+                    and k + 1 < k_end and i + 1 < n:
                 # Rows k..k_stop-1, one per interval: stops before the last row of the
                 # series bucket, of the call and of the replay (the interval body below
                 # writes those) or after the row that spends the budget. Everything here
@@ -717,10 +730,24 @@ def _make_fused(update_inline):
             tot_above += above
             tot_min_cost += min_cost
             rows_seen += j - i
-            fbt = feedback_tuple(k, j - i, wins, results, spend, expected, target, cum, cum_e,
-                                 budget * f1, cum_r, budget - cum, t_start, t_end, budget,
-                                 1.0 - f1, rows_seen, norm if norm > 0.0 else max(target, 1e-300),
-                                 1.0 if cum >= budget else 0.0, expected_auctions)
+            fb[FB_K] = k
+            fb[FB_AUCTIONS] = j - i
+            fb[FB_WINS] = wins
+            fb[FB_RESULTS] = results
+            fb[FB_SPEND] = spend
+            fb[FB_EXPECTED_SPEND] = expected
+            fb[FB_TARGET] = target
+            fb[FB_CUM_SPEND] = cum
+            fb[FB_CUM_EXPECTED] = cum_e
+            fb[FB_CUM_TARGET] = budget * f1
+            fb[FB_CUM_RESULTS] = cum_r
+            fb[FB_REMAINING] = budget - cum
+            fb[FB_T_START] = t_start
+            fb[FB_T_END] = t_end
+            fb[FB_REMAINING_SHARE] = 1.0 - f1
+            fb[FB_ROWS_SEEN] = rows_seen
+            fb[FB_NORM] = norm if norm > 0.0 else max(target, 1e-300)
+            fb[FB_EXHAUSTED] = 1.0 if cum >= budget else 0.0
             # the series: one row per bucket of ``group`` updates (``update`` = the last)
             s_auctions += j - i
             s_wins += wins
@@ -755,13 +782,10 @@ def _make_fused(update_inline):
                 ftl_insert(index, value[i:j], price[i:j])
             i = j
             t_prev = t_end
-            update_inline(state, params, fbt)
+            update_inline(state, params, fb)
             if feed_index and not np.isnan(state[STATE_QUERY]):
                 state[STATE_LAMBDA] = ftl_lambda_for_spend(index, state[STATE_QUERY])
             k += 1
-        if k_end > k_begin:  # the last interval's feedback, read by the generic path
-            for x in range(FB_SIZE):
-                fb[x] = fbt[x]
         acc[ACC_POS] = i
         acc[ACC_T_END] = t_prev
         acc[ACC_F_END] = f_prev

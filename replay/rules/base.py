@@ -14,9 +14,10 @@ impression; ``C`` the cost-per-result cap, 0 without one), shaded on first-price
 
 A built-in rule also ships a numba function ``numba_update(state, params, fb)`` so the
 replay runs as one compiled loop. ``fb`` is read-only: index it with
-``replay.kernels.replay_loop.FB_*`` only, since the compiled loop passes a tuple of
-``FB_SIZE`` floats (an array when ``update`` calls it from Python). A rule written in plain
-Python only overrides ``update`` and runs through the generic path.
+``replay.kernels.replay_loop.FB_*`` only, since it is a float64 array or, when one row
+feeds each update, a tuple of ``FB_SIZE`` floats (the engine checks that the update
+compiles for both). A rule written in plain Python only overrides ``update`` and runs
+through the generic path.
 """
 
 from __future__ import annotations
@@ -218,8 +219,9 @@ class IntervalFeedback:
 
     Spends in currency, results in the campaign's result unit, times in microseconds UTC.
     ``fb`` is the same information as a float64 vector (indexes
-    ``replay.kernels.replay_loop.FB_*``; the compiled loop gives numba updates these fields
-    as a tuple). ``value``/``min_win_price`` are the
+    ``replay.kernels.replay_loop.FB_*``; the compiled loop gives numba updates this array,
+    or these fields as a tuple when one row feeds each update). ``value``/``min_win_price``
+    are the
     interval's rows (views; past rows only).
     """
 
