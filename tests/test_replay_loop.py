@@ -218,14 +218,17 @@ def test_poison_check_catches_a_leak(monkeypatch) -> None:
         check_rule(mod.Peek)
 
 
-def test_numba_update_that_treats_fb_as_an_array_gets_one_clear_line() -> None:
+@pytest.mark.parametrize("eager", [False, True], ids=["lazy", "eager-signature"])
+def test_numba_update_that_treats_fb_as_an_array_gets_one_clear_line(eager: bool) -> None:
     from numba import njit
 
     from replay.rules.base import BidRule
 
-    @njit
-    def sized_update(state, params, fb):
-        state[0] = state[0] * fb.shape[0] / rl.FB_SIZE  # fb is a tuple in the loop
+    def sized(state, params, fb):
+        state[0] = state[0] * fb.shape[0] / rl.FB_SIZE  # fb may be a tuple in the loop
+
+    sized_update = njit("void(float64[::1], float64[::1], float64[::1])")(sized) if eager \
+        else njit(sized)
 
     class Sized(BidRule):
         name = "sized"

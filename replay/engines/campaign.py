@@ -343,10 +343,8 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
             from replay.kernels.ftl_index import ftl_index_new
 
             index = rule.index_ if rule.uses_index else ftl_index_new(1)
+            _check_update_takes_tuple(rule)
             try:
-                # Per-request replays hand the update a tuple: check that it takes one on
-                # every schedule, so a rule never fails only on long every-request runs.
-                type(rule).numba_update.compile(_UPDATE_WITH_TUPLE)
                 # The loop build with the per-request stretch, only where the stretch runs:
                 # one row per update, win thresholds, no index, series buckets of 2+ rows.
                 one_row = every_n == 1 and fast and not rule.uses_index and group > 1
@@ -355,12 +353,7 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
                                 bool(rule.uses_index), *common, *tail, 0, total_k,
                                 one_row=one_row)
             except TypingError as exc:
-                first = next((x for x in str(exc).splitlines() if x.strip()), "")
-                raise UsageError(
-                    f"rule {rule.name!r}: its numba_update does not compile in the replay "
-                    f"loop, where fb may be a tuple of {rl.FB_SIZE} floats (read it with the "
-                    f"FB_* indexes only; state and params are float64 arrays); numba says: "
-                    f"{first.strip()}") from None
+                raise _update_error(rule, exc) from None
             _check_state(rule, total_k - 1)
         else:
             from replay.kernels.ftl_index import ftl_index_new
@@ -385,6 +378,23 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
 #: ``numba_update(state, params, fb)`` as the per-request stretch calls it.
 _UPDATE_WITH_TUPLE = (nb_types.float64[::1], nb_types.float64[::1],
                       nb_types.UniTuple(nb_types.float64, rl.FB_SIZE))
+
+
+def _update_error(rule: BidRule, exc: Exception) -> UsageError:
+    first = next((x for x in str(exc).splitlines() if x.strip()), "")
+    return UsageError(f"rule {rule.name!r}: its numba_update does not compile in the replay "
+                      f"loop, where fb may be a tuple of {rl.FB_SIZE} floats (read it with "
+                      f"the FB_* indexes only; state and params are float64 arrays); numba "
+                      f"says: {first.strip()}")
+
+
+def _check_update_takes_tuple(rule: BidRule) -> None:
+    """Per-request replays hand the update a tuple: check that it takes one on every
+    schedule, so a rule never fails only on long every-request runs."""
+    try:
+        type(rule).numba_update.compile(_UPDATE_WITH_TUPLE)
+    except (TypingError, RuntimeError) as exc:  # RuntimeError: an eager signature
+        raise _update_error(rule, exc) from None
 
 
 def _past_rows(arr: np.ndarray, i: int, j: int) -> np.ndarray:
