@@ -471,10 +471,10 @@ def _make_fused(update_inline, one_row):
         s_spend = series[srow, SER_SPEND] if spos > 0 else 0.0
         s_expected = series[srow, SER_EXPECTED] if spos > 0 else 0.0
         s_target = series[srow, SER_TARGET] if spos > 0 else 0.0
-        # One row per update, the rule's own numba update, win thresholds: the per-request
-        # stretch below runs such rows without the chunk machinery.
         fb[FB_BUDGET] = budget
         fb[FB_EXPECTED_AUCTIONS] = expected_auctions
+        # One row per update, the rule's own numba update, win thresholds: the per-request
+        # stretch below runs such rows without the chunk machinery.
         stretch = every_n == 1 and fast and not feed_index
         k = k_begin
         while k < k_end:

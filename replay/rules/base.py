@@ -15,9 +15,9 @@ impression; ``C`` the cost-per-result cap, 0 without one), shaded on first-price
 A built-in rule also ships a numba function ``numba_update(state, params, fb)`` so the
 replay runs as one compiled loop. ``fb`` is read-only: index it with
 ``replay.kernels.replay_loop.FB_*`` only, since it is a float64 array or, when one row
-feeds each update, a tuple of ``FB_SIZE`` floats (the engine checks that the update
-compiles for both). A rule written in plain Python only overrides ``update`` and runs
-through the generic path.
+feeds each update, a tuple of ``FB_SIZE`` floats (the engine compiles the update for a
+tuple before every replay). A rule written in plain Python only overrides ``update`` and
+runs through the generic path.
 """
 
 from __future__ import annotations
@@ -221,8 +221,7 @@ class IntervalFeedback:
     ``fb`` is the same information as a float64 vector (indexes
     ``replay.kernels.replay_loop.FB_*``; the compiled loop gives numba updates this array,
     or these fields as a tuple when one row feeds each update). ``value``/``min_win_price``
-    are the
-    interval's rows (views; past rows only).
+    are the interval's rows (views; past rows only).
     """
 
     k: int
