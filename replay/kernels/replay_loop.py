@@ -16,9 +16,11 @@ the end of interval k-1 from the feedback vector ``fb`` (indexes ``FB_*`` below)
 rows before it: a rule cannot see the future.
 
 ``fused_loop(update)`` is ONE compiled loop with the rule's ``@njit`` update inlined at
-every boundary (compiled once per update function and process). The engine's generic path
-(a rule with a Python ``update``) runs the same loop one interval per call with the no-op
-``no_update``, reads ``fb`` and calls the Python update in between.
+every boundary: ``replay_fused_loop`` below, built per update function from a generated copy
+of its source and cached on disk (``replay.kernels._fused_build``), so a process loads it
+instead of compiling it again. The engine's generic path (a rule with a Python ``update``)
+runs this module's own build, whose update is the no-op ``no_update``, one interval per
+call, reads ``fb`` and calls the Python update in between.
 
 Every request (``every_n == 1``, a numba update, win thresholds, series buckets of several
 updates): the build ``fused_loop(update, one_row=True)`` runs the rows between
@@ -390,242 +392,112 @@ def feedback_tuple(k, auctions, wins, results, spend, expected, target, cum, cum
             float(expected_auctions))
 
 
-_FUSED: dict[object, object] = {}
+@njit(cache=True, nogil=True)
+def no_update(state, params, fb):
+    """The update of the generic path's compiled part (the Python update runs after)."""
+    return
 
 
-def fused_loop(update, one_row: bool = False):
-    """The replay loop compiled with ``update`` (an ``@njit`` function
-    ``update(state, params, fb)``: ``fb`` the float64 array, or in the per-request stretch a
-    tuple of ``FB_SIZE`` floats) inlined at each boundary; built once per (update function,
-    ``one_row``) and process.
+# ``replay_fused_loop`` calls ``update_inline`` at each boundary and tests ``ONE_ROW``:
+# module globals, which numba compiles in as constants. The build in this module is the
+# generic path's (no-op update, no stretch); ``fused_loop`` makes the others from a
+# generated copy of the loop that rebinds both names (``replay.kernels._fused_build``).
+update_inline = no_update
+ONE_ROW = False
 
-    ``one_row``: also compile the per-request stretch (see the module docstring). A separate
-    build because its code, even never run, slowed the batch passes by about 8 % (measured
-    in interleaved runs; LLVM allocates registers over the whole function).
 
-    Inlining matters: a call to a separately compiled function passing three arrays costs
-    more (reference counting) than a per-request rule's whole update. No cache=True:
-    numba cannot cache a closure over another function, so compiling costs a few seconds
-    per rule per process.
+@njit(cache=True, nogil=True)
+def replay_fused_loop(state, params, index, feed_index, ts, value, price, charge_prob,
+                      placement, first_price, uniforms, sampled, every_n, every_us,
+                      flight_start, flight_end, curve_t, curve_f, budget, norm,
+                      expected_auctions, cap, fixed_bid, pbid, shade_on, offsets, knots_w,
+                      knots_b, linear, tab_fp, maxlog, grid, rec, gidx, unit, mask, fast, need,
+                      above_w, acc, won, pl_acc, series, group, fb, k_begin, k_end):
+    """Replay intervals ``k_begin..k_end-1`` in one compiled loop, calling
+    ``update(state, params, fb)`` at each boundary (``feedback_tuple(...)`` in the
+    per-request stretch); the position (row, time) carries over in ``acc`` and the last
+    feedback is left in ``fb``, so the generic path can run one interval per call with a
+    no-op update.
+
+    Intervals: ``every_n > 0``: rows i..i+every_n, ending at the next row's ts (the flight
+    end after the last row); else ``[flight_start + k*every_us, +every_us)``. ``fast``:
+    ``need``/``above_w`` from ``win_thresholds`` decide wins without shading every row
+    (same decisions); else every row that could win is shaded. Everything per row is
+    written out here rather than in helper functions: a call to a separately compiled
+    function with this many arrays costs more than the work of one row.
     """
-    key = (update, bool(one_row))
-    loop = _FUSED.get(key)
-    if loop is None:
-        loop = _make_fused(update, bool(one_row))
-        _FUSED[key] = loop
-    return loop
-
-
-def replay_fused(update, *args, one_row: bool = False):
-    """``fused_loop(update, one_row)(*args)``: see ``_make_fused`` for the arguments."""
-    return fused_loop(update, one_row)(*args)
-
-
-def _make_fused(update_inline, one_row):
-    @njit(nogil=True)
-    def replay_fused_loop(state, params, index, feed_index, ts, value, price, charge_prob,
-                     placement, first_price, uniforms, sampled, every_n, every_us, flight_start,
-                     flight_end, curve_t, curve_f, budget, norm, expected_auctions, cap,
-                     fixed_bid, pbid, shade_on, offsets, knots_w, knots_b, linear, tab_fp,
-                     maxlog, grid, rec, gidx, unit, mask, fast, need, above_w, acc, won,
-                     pl_acc, series, group, fb, k_begin, k_end):
-        """Replay intervals ``k_begin..k_end-1`` in one compiled loop, calling
-        ``update(state, params, fb)`` at each boundary (``feedback_tuple(...)`` in the
-        per-request stretch); the position (row, time) carries over in ``acc`` and the last
-        feedback is left in ``fb``, so the generic path can run one interval per call with a
-        no-op update.
-
-        Intervals: ``every_n > 0``: rows i..i+every_n, ending at the next row's ts (the flight
-        end after the last row); else ``[flight_start + k*every_us, +every_us)``. ``fast``:
-        ``need``/``above_w`` from ``win_thresholds`` decide wins without shading every row
-        (same decisions); else every row that could win is shaded. Everything per row is
-        written out here rather than in helper functions: a call to a separately compiled
-        function with this many arrays costs more than the work of one row.
-        """
-        n = ts.shape[0]
-        cand = np.empty(WIN_CHUNK, np.int64)  # pass 1's won rows of a chunk
-        cand_fp = np.empty(WIN_CHUNK, np.int64)  # those of them to shade
-        paid_buf = np.empty(WIN_CHUNK, np.float64)  # price paid per row of the chunk if won
-        srow = k_begin // group  # series row and position in its bucket (no division per k)
-        spos = k_begin - srow * group
-        # The running totals live in locals and go back to ``acc`` when the call ends (the
-        # update sees only ``fb``): per-request schedules pay little per interval.
-        cpos = int(acc[ACC_CURVE_POS])
-        i = int(acc[ACC_POS])
-        t_prev = acc[ACC_T_END]
-        f_prev = acc[ACC_F_END]
-        cum = acc[ACC_SPEND]
-        cum_e = acc[ACC_EXPECTED]
-        cum_r = acc[ACC_RESULTS]
-        last_ch = acc[ACC_LAST_CHARGE]
-        ex_ts = acc[ACC_EXHAUSTED_TS]
-        tot_wins = acc[ACC_WINS]
-        tot_bids = acc[ACC_BIDS]
-        tot_above = acc[ACC_ABOVE]
-        tot_min_cost = acc[ACC_MIN_COST]
-        rows_seen = acc[ACC_ROWS]
-        # Bucket sums of the current series row (resumed when a call starts mid-bucket).
-        s_auctions = series[srow, SER_AUCTIONS] if spos > 0 else 0.0
-        s_wins = series[srow, SER_WINS] if spos > 0 else 0.0
-        s_results = series[srow, SER_RESULTS] if spos > 0 else 0.0
-        s_spend = series[srow, SER_SPEND] if spos > 0 else 0.0
-        s_expected = series[srow, SER_EXPECTED] if spos > 0 else 0.0
-        s_target = series[srow, SER_TARGET] if spos > 0 else 0.0
-        fb[FB_BUDGET] = budget
-        fb[FB_EXPECTED_AUCTIONS] = expected_auctions
-        # One row per update, the rule's own numba update, win thresholds: the per-request
-        # stretch below runs such rows without the chunk machinery.
-        stretch = every_n == 1 and fast and not feed_index
-        k = k_begin
-        while k < k_end:
-            # ``one_row`` first: a constant of the build, so numba drops the block (its
-            # typing and compile time) from the other build
-            if one_row and stretch and k > 0 and cum < budget and spos < group - 1 \
-                    and k + 1 < k_end and i + 1 < n:
-                # Rows k..k_stop-1, one per interval: stops before the last row of the
-                # series bucket, of the call and of the replay (the interval body below
-                # writes those) or after the row that spends the budget. Everything here
-                # is what the body below does for an interval of one row, bit for bit; a
-                # test compares it with the generic path, which never takes this branch.
-                k_stop = min(k_end - 1, k + (group - 1 - spos), n - 1 - i + k)
-                while k < k_stop:
-                    r = _U(i)
-                    lam = state[STATE_LAMBDA]
-                    mu = state[STATE_MU]
-                    scale = (1.0 + mu * cap) / (max(lam, LAMBDA_FLOOR) + mu)
-                    p = _U(placement[r])
-                    w = pbid[p] if fixed_bid else value[r] * scale
-                    above = np.int64(w > above_w[p])
-                    spend = 0.0
-                    expected = 0.0
-                    results = 0.0
-                    wins = 0
-                    min_cost = 0.0
-                    if w >= need[r]:  # a jump: the CPU runs ahead of the win (see DEVELOPERS)
-                        c = price[r]
-                        paid = c
-                        if first_price[r]:
-                            b = w
-                            if not shade_on:
-                                pass
-                            elif grid[p, G_SLOW]:
-                                b = shade(w, np.int64(p), offsets, knots_w, knots_b, linear,
-                                          tab_fp)
-                                if b > w:
-                                    b = w
-                            else:  # as in pass 2 below
-                                b, cell = grid_lookup(w, p, grid, rec, mask)
-                                if w > rec[cell, R_NEXT]:
-                                    h = gidx[cell] + 2
-                                    while h < grid[p, G_HI] and knots_w[h] < w:
-                                        h += 1
-                                    b = knots_b[h - 1]
-                                b = pick(mask[np.int64(b < w)], b, w)
-                            paid = b
-                        if sampled:
-                            q = charge_prob[r]
-                            ch = (paid / q) * unit[np.int64(uniforms[r] < q)]
-                        else:
-                            ch = paid
-                        won[r] = True
-                        wins = 1
-                        results = value[r]
-                        cum_r += value[r]
-                        spend = ch
-                        cum += ch
-                        expected = paid
-                        cum_e += paid
-                        min_cost = c
-                        pl_acc[p, 0] += 1.0
-                        pl_acc[p, 1] += value[r]
-                        pl_acc[p, 2] += ch
-                        pl_acc[p, 3] += paid
-                        last_ch = ch
-                        if cum >= budget and ex_ts < 0:
-                            ex_ts = float(ts[r])
-                    t_end = float(ts[i + 1])
-                    f1, cpos = _curve_from(t_end, curve_t, curve_f, cpos)
-                    target = budget * (f1 - f_prev)
-                    tot_wins += wins
-                    tot_bids += 1
-                    tot_above += above
-                    tot_min_cost += min_cost
-                    rows_seen += 1
-                    s_auctions += 1
-                    s_wins += wins
-                    s_results += results
-                    s_spend += spend
-                    s_expected += expected
-                    s_target += target
-                    spos += 1
-                    fbt = feedback_tuple(k, 1, wins, results, spend, expected, target, cum, cum_e,
-                                         budget * f1, cum_r, budget - cum, t_prev, t_end, budget,
-                                         1.0 - f1, rows_seen,
-                                         norm if norm > 0.0 else max(target, 1e-300),
-                                         1.0 if cum >= budget else 0.0, expected_auctions)
-                    f_prev = f1
-                    i += 1
-                    t_prev = t_end
-                    update_inline(state, params, fbt)
-                    k += 1
-                    if cum >= budget:
-                        break
-                continue
-            t_start = float(flight_start) if k == 0 else t_prev
-            lam = state[STATE_LAMBDA]
-            mu = state[STATE_MU]
-            if every_n > 0:
-                j = min(i + every_n, n)
-                t_end = float(flight_end) if j >= n else float(ts[j])
-            else:
-                t_end = min(float(flight_start) + float(k + 1) * float(every_us),
-                            float(flight_end))
-                j = i + np.searchsorted(ts[i:], np.int64(t_end), "left") \
-                    if t_end < flight_end else n
-            scale = (1.0 + mu * cap) / (max(lam, LAMBDA_FLOOR) + mu)
-            spend = 0.0
-            expected = 0.0
-            results = 0.0
-            wins = 0
-            bids = 0
-            above = 0
-            min_cost = 0.0
-            if fast and cum < budget:
-                # Rows are indexed by unsigned integers here: numba wraps every signed
-                # index in a negative-index fix-up (about 4 instructions a load).
-                bids = j - i
-                r0 = i
-                while r0 < j:
-                    r1 = min(r0 + WIN_CHUNK, j)
-                    base = _U(r0)
-                    # Pass 1: the won rows of the chunk, listed without a jump on the win
-                    # (a coin flip the CPU would mispredict half the time).
-                    m = _U(0)
-                    m_fp = _U(0)
-                    for r in range(base, _U(r1)):
-                        p = _U(placement[r])
-                        w = pbid[p] if fixed_bid else value[r] * scale
-                        above += w > above_w[p]
-                        hit = w >= need[r]
-                        cand[m] = r
-                        m += _U(hit)
-                        cand_fp[m_fp] = r
-                        m_fp += _U(hit & first_price[r])
-                        paid_buf[r - base] = price[r]
-                    # Pass 2: the price of each won first-price row is its (shaded) bid, in
-                    # a loop of independent lookups: no running sum waits on them.
-                    for t in range(m_fp):
-                        r = _U(cand_fp[t])
-                        p = _U(placement[r])
-                        w = pbid[p] if fixed_bid else value[r] * scale
+    n = ts.shape[0]
+    cand = np.empty(WIN_CHUNK, np.int64)  # pass 1's won rows of a chunk
+    cand_fp = np.empty(WIN_CHUNK, np.int64)  # those of them to shade
+    paid_buf = np.empty(WIN_CHUNK, np.float64)  # price paid per row of the chunk if won
+    srow = k_begin // group  # series row and position in its bucket (no division per k)
+    spos = k_begin - srow * group
+    # The running totals live in locals and go back to ``acc`` when the call ends (the
+    # update sees only ``fb``): per-request schedules pay little per interval.
+    cpos = int(acc[ACC_CURVE_POS])
+    i = int(acc[ACC_POS])
+    t_prev = acc[ACC_T_END]
+    f_prev = acc[ACC_F_END]
+    cum = acc[ACC_SPEND]
+    cum_e = acc[ACC_EXPECTED]
+    cum_r = acc[ACC_RESULTS]
+    last_ch = acc[ACC_LAST_CHARGE]
+    ex_ts = acc[ACC_EXHAUSTED_TS]
+    tot_wins = acc[ACC_WINS]
+    tot_bids = acc[ACC_BIDS]
+    tot_above = acc[ACC_ABOVE]
+    tot_min_cost = acc[ACC_MIN_COST]
+    rows_seen = acc[ACC_ROWS]
+    # Bucket sums of the current series row (resumed when a call starts mid-bucket).
+    s_auctions = series[srow, SER_AUCTIONS] if spos > 0 else 0.0
+    s_wins = series[srow, SER_WINS] if spos > 0 else 0.0
+    s_results = series[srow, SER_RESULTS] if spos > 0 else 0.0
+    s_spend = series[srow, SER_SPEND] if spos > 0 else 0.0
+    s_expected = series[srow, SER_EXPECTED] if spos > 0 else 0.0
+    s_target = series[srow, SER_TARGET] if spos > 0 else 0.0
+    fb[FB_BUDGET] = budget
+    fb[FB_EXPECTED_AUCTIONS] = expected_auctions
+    # One row per update, the rule's own numba update, win thresholds: the per-request
+    # stretch below runs such rows without the chunk machinery.
+    stretch = every_n == 1 and fast and not feed_index
+    k = k_begin
+    while k < k_end:
+        # ``ONE_ROW`` first: a constant of the build, so numba drops the block (its
+        # typing and compile time) from the other build
+        if ONE_ROW and stretch and k > 0 and cum < budget and spos < group - 1 \
+                and k + 1 < k_end and i + 1 < n:
+            # Rows k..k_stop-1, one per interval: stops before the last row of the
+            # series bucket, of the call and of the replay (the interval body below
+            # writes those) or after the row that spends the budget. Everything here
+            # is what the body below does for an interval of one row, bit for bit; a
+            # test compares it with the generic path, which never takes this branch.
+            k_stop = min(k_end - 1, k + (group - 1 - spos), n - 1 - i + k)
+            while k < k_stop:
+                r = _U(i)
+                lam = state[STATE_LAMBDA]
+                mu = state[STATE_MU]
+                scale = (1.0 + mu * cap) / (max(lam, LAMBDA_FLOOR) + mu)
+                p = _U(placement[r])
+                w = pbid[p] if fixed_bid else value[r] * scale
+                above = np.int64(w > above_w[p])
+                spend = 0.0
+                expected = 0.0
+                results = 0.0
+                wins = 0
+                min_cost = 0.0
+                if w >= need[r]:  # a jump: the CPU runs ahead of the win (see DEVELOPERS)
+                    c = price[r]
+                    paid = c
+                    if first_price[r]:
                         b = w
                         if not shade_on:
                             pass
-                        elif grid[p, G_SLOW]:  # the same for every row of a placement
-                            b = shade(w, np.int64(p), offsets, knots_w, knots_b, linear, tab_fp)
+                        elif grid[p, G_SLOW]:
+                            b = shade(w, np.int64(p), offsets, knots_w, knots_b, linear,
+                                      tab_fp)
                             if b > w:
                                 b = w
-                        else:  # shade_fast, written out (see grid_lookup)
+                        else:  # as in pass 2 below
                             b, cell = grid_lookup(w, p, grid, rec, mask)
                             if w > rec[cell, R_NEXT]:
                                 h = gidx[cell] + 2
@@ -633,18 +505,184 @@ def _make_fused(update_inline, one_row):
                                     h += 1
                                 b = knots_b[h - 1]
                             b = pick(mask[np.int64(b < w)], b, w)
-                        paid_buf[r - base] = b
-                    # Pass 3: the won rows in row order, so every sum adds in the same
-                    # order as the per-row loop (bit-identical totals).
-                    r_stop = -1
-                    for t in range(m):
-                        r = _U(cand[t])
-                        p = _U(placement[r])
-                        c = price[r]
-                        paid = paid_buf[r - base]
-                        if sampled:  # charged with probability q: a product, no branch
+                        paid = b
+                    if sampled:
+                        q = charge_prob[r]
+                        ch = (paid / q) * unit[np.int64(uniforms[r] < q)]
+                    else:
+                        ch = paid
+                    won[r] = True
+                    wins = 1
+                    results = value[r]
+                    cum_r += value[r]
+                    spend = ch
+                    cum += ch
+                    expected = paid
+                    cum_e += paid
+                    min_cost = c
+                    pl_acc[p, 0] += 1.0
+                    pl_acc[p, 1] += value[r]
+                    pl_acc[p, 2] += ch
+                    pl_acc[p, 3] += paid
+                    last_ch = ch
+                    if cum >= budget and ex_ts < 0:
+                        ex_ts = float(ts[r])
+                t_end = float(ts[i + 1])
+                f1, cpos = _curve_from(t_end, curve_t, curve_f, cpos)
+                target = budget * (f1 - f_prev)
+                tot_wins += wins
+                tot_bids += 1
+                tot_above += above
+                tot_min_cost += min_cost
+                rows_seen += 1
+                s_auctions += 1
+                s_wins += wins
+                s_results += results
+                s_spend += spend
+                s_expected += expected
+                s_target += target
+                spos += 1
+                fbt = feedback_tuple(k, 1, wins, results, spend, expected, target, cum, cum_e,
+                                     budget * f1, cum_r, budget - cum, t_prev, t_end, budget,
+                                     1.0 - f1, rows_seen,
+                                     norm if norm > 0.0 else max(target, 1e-300),
+                                     1.0 if cum >= budget else 0.0, expected_auctions)
+                f_prev = f1
+                i += 1
+                t_prev = t_end
+                update_inline(state, params, fbt)
+                k += 1
+                if cum >= budget:
+                    break
+            continue
+        t_start = float(flight_start) if k == 0 else t_prev
+        lam = state[STATE_LAMBDA]
+        mu = state[STATE_MU]
+        if every_n > 0:
+            j = min(i + every_n, n)
+            t_end = float(flight_end) if j >= n else float(ts[j])
+        else:
+            t_end = min(float(flight_start) + float(k + 1) * float(every_us),
+                        float(flight_end))
+            j = i + np.searchsorted(ts[i:], np.int64(t_end), "left") \
+                if t_end < flight_end else n
+        scale = (1.0 + mu * cap) / (max(lam, LAMBDA_FLOOR) + mu)
+        spend = 0.0
+        expected = 0.0
+        results = 0.0
+        wins = 0
+        bids = 0
+        above = 0
+        min_cost = 0.0
+        if fast and cum < budget:
+            # Rows are indexed by unsigned integers here: numba wraps every signed
+            # index in a negative-index fix-up (about 4 instructions a load).
+            bids = j - i
+            r0 = i
+            while r0 < j:
+                r1 = min(r0 + WIN_CHUNK, j)
+                base = _U(r0)
+                # Pass 1: the won rows of the chunk, listed without a jump on the win
+                # (a coin flip the CPU would mispredict half the time).
+                m = _U(0)
+                m_fp = _U(0)
+                for r in range(base, _U(r1)):
+                    p = _U(placement[r])
+                    w = pbid[p] if fixed_bid else value[r] * scale
+                    above += w > above_w[p]
+                    hit = w >= need[r]
+                    cand[m] = r
+                    m += _U(hit)
+                    cand_fp[m_fp] = r
+                    m_fp += _U(hit & first_price[r])
+                    paid_buf[r - base] = price[r]
+                # Pass 2: the price of each won first-price row is its (shaded) bid, in
+                # a loop of independent lookups: no running sum waits on them.
+                for t in range(m_fp):
+                    r = _U(cand_fp[t])
+                    p = _U(placement[r])
+                    w = pbid[p] if fixed_bid else value[r] * scale
+                    b = w
+                    if not shade_on:
+                        pass
+                    elif grid[p, G_SLOW]:  # the same for every row of a placement
+                        b = shade(w, np.int64(p), offsets, knots_w, knots_b, linear, tab_fp)
+                        if b > w:
+                            b = w
+                    else:  # shade_fast, written out (see grid_lookup)
+                        b, cell = grid_lookup(w, p, grid, rec, mask)
+                        if w > rec[cell, R_NEXT]:
+                            h = gidx[cell] + 2
+                            while h < grid[p, G_HI] and knots_w[h] < w:
+                                h += 1
+                            b = knots_b[h - 1]
+                        b = pick(mask[np.int64(b < w)], b, w)
+                    paid_buf[r - base] = b
+                # Pass 3: the won rows in row order, so every sum adds in the same
+                # order as the per-row loop (bit-identical totals).
+                r_stop = -1
+                for t in range(m):
+                    r = _U(cand[t])
+                    p = _U(placement[r])
+                    c = price[r]
+                    paid = paid_buf[r - base]
+                    if sampled:  # charged with probability q: a product, no branch
+                        q = charge_prob[r]
+                        ch = (paid / q) * unit[np.int64(uniforms[r] < q)]
+                    else:
+                        ch = paid
+                    won[r] = True
+                    wins += 1
+                    results += value[r]
+                    cum_r += value[r]
+                    spend += ch
+                    cum += ch
+                    expected += paid
+                    cum_e += paid
+                    min_cost += c
+                    pl_acc[p, 0] += 1.0
+                    pl_acc[p, 1] += value[r]
+                    pl_acc[p, 2] += ch
+                    pl_acc[p, 3] += paid
+                    last_ch = ch
+                    if cum >= budget:
+                        r_stop = np.int64(r)
+                        break
+                if r_stop >= 0:
+                    # The budget ran out at r_stop: rows after it were not bid on.
+                    bids = r_stop - i + 1
+                    for r in range(r_stop + 1, r1):
+                        p = placement[r]
+                        w = pbid[p] if fixed_bid else value[r] * scale
+                        above -= w > above_w[p]
+                    if ex_ts < 0:
+                        ex_ts = float(ts[r_stop])
+                    break
+                r0 = r1
+        elif not fast:
+            for r in range(i, j):
+                if cum >= budget:
+                    break
+                bids += 1
+                c = price[r]
+                p = placement[r]
+                w = pbid[p] if fixed_bid else value[r] * scale
+                ml = maxlog[p]
+                # Shading never raises a bid above w: rows with w below both the price and
+                # the logged maximum can neither win nor extrapolate, so skip shading them.
+                if w >= c or w > ml:
+                    b = w
+                    if first_price[r] and shade_on:
+                        # a call (reference counting its arrays) is fine off the fast path
+                        b = shade_fast(w, p, offsets, knots_w, knots_b, linear, tab_fp,
+                                       grid, rec, gidx, mask)
+                    if b > ml:
+                        above += 1
+                    if b >= c:
+                        paid = b if first_price[r] else c
+                        if sampled:
                             q = charge_prob[r]
-                            ch = (paid / q) * unit[np.int64(uniforms[r] < q)]
+                            ch = paid / q if uniforms[r] < q else 0.0
                         else:
                             ch = paid
                         won[r] = True
@@ -661,152 +699,125 @@ def _make_fused(update_inline, one_row):
                         pl_acc[p, 2] += ch
                         pl_acc[p, 3] += paid
                         last_ch = ch
-                        if cum >= budget:
-                            r_stop = np.int64(r)
-                            break
-                    if r_stop >= 0:
-                        # The budget ran out at r_stop: rows after it were not bid on.
-                        bids = r_stop - i + 1
-                        for r in range(r_stop + 1, r1):
-                            p = placement[r]
-                            w = pbid[p] if fixed_bid else value[r] * scale
-                            above -= w > above_w[p]
-                        if ex_ts < 0:
-                            ex_ts = float(ts[r_stop])
-                        break
-                    r0 = r1
-            elif not fast:
-                for r in range(i, j):
-                    if cum >= budget:
-                        break
-                    bids += 1
-                    c = price[r]
-                    p = placement[r]
-                    w = pbid[p] if fixed_bid else value[r] * scale
-                    ml = maxlog[p]
-                    # Shading never raises a bid above w: rows with w below both the price and
-                    # the logged maximum can neither win nor extrapolate, so skip shading them.
-                    if w >= c or w > ml:
-                        b = w
-                        if first_price[r] and shade_on:
-                            # a call (reference counting its arrays) is fine off the fast path
-                            b = shade_fast(w, p, offsets, knots_w, knots_b, linear, tab_fp,
-                                           grid, rec, gidx, mask)
-                        if b > ml:
-                            above += 1
-                        if b >= c:
-                            paid = b if first_price[r] else c
-                            if sampled:
-                                q = charge_prob[r]
-                                ch = paid / q if uniforms[r] < q else 0.0
-                            else:
-                                ch = paid
-                            won[r] = True
-                            wins += 1
-                            results += value[r]
-                            cum_r += value[r]
-                            spend += ch
-                            cum += ch
-                            expected += paid
-                            cum_e += paid
-                            min_cost += c
-                            pl_acc[p, 0] += 1.0
-                            pl_acc[p, 1] += value[r]
-                            pl_acc[p, 2] += ch
-                            pl_acc[p, 3] += paid
-                            last_ch = ch
-                            if cum >= budget and ex_ts < 0:
-                                ex_ts = float(ts[r])
-            # F at the interval start is F at the previous end, so one evaluation each.
-            if k > 0:
-                f0 = f_prev
-            else:
-                f0, cpos = _curve_from(t_start, curve_t, curve_f, cpos)
-            f1, cpos = _curve_from(t_end, curve_t, curve_f, cpos)
-            f_prev = f1
-            target = budget * (f1 - f0)
-            tot_wins += wins
-            tot_bids += bids
-            tot_above += above
-            tot_min_cost += min_cost
-            rows_seen += j - i
-            fb[FB_K] = k
-            fb[FB_AUCTIONS] = j - i
-            fb[FB_WINS] = wins
-            fb[FB_RESULTS] = results
-            fb[FB_SPEND] = spend
-            fb[FB_EXPECTED_SPEND] = expected
-            fb[FB_TARGET] = target
-            fb[FB_CUM_SPEND] = cum
-            fb[FB_CUM_EXPECTED] = cum_e
-            fb[FB_CUM_TARGET] = budget * f1
-            fb[FB_CUM_RESULTS] = cum_r
-            fb[FB_REMAINING] = budget - cum
-            fb[FB_T_START] = t_start
-            fb[FB_T_END] = t_end
-            fb[FB_REMAINING_SHARE] = 1.0 - f1
-            fb[FB_ROWS_SEEN] = rows_seen
-            fb[FB_NORM] = norm if norm > 0.0 else max(target, 1e-300)
-            fb[FB_EXHAUSTED] = 1.0 if cum >= budget else 0.0
-            # the series: one row per bucket of ``group`` updates (``update`` = the last)
-            s_auctions += j - i
-            s_wins += wins
-            s_results += results
-            s_spend += spend
-            s_expected += expected
-            s_target += target
-            spos += 1
-            if spos == group or k == k_end - 1:
-                series[srow, SER_UPDATE] = k
-                series[srow, SER_TS] = t_end
-                series[srow, SER_LAMBDA] = lam
-                series[srow, SER_MU] = mu
-                series[srow, SER_AUCTIONS] = s_auctions
-                series[srow, SER_WINS] = s_wins
-                series[srow, SER_RESULTS] = s_results
-                series[srow, SER_SPEND] = s_spend
-                series[srow, SER_EXPECTED] = s_expected
-                series[srow, SER_TARGET] = s_target
-                series[srow, SER_CUM_SPEND] = cum
-                series[srow, SER_CUM_TARGET] = budget * f1
-            if spos == group:
-                spos = 0
-                srow += 1
-                s_auctions = 0.0
-                s_wins = 0.0
-                s_results = 0.0
-                s_spend = 0.0
-                s_expected = 0.0
-                s_target = 0.0
-            if feed_index:
-                ftl_insert(index, value[i:j], price[i:j])
-            i = j
-            t_prev = t_end
-            update_inline(state, params, fb)
-            if feed_index and not np.isnan(state[STATE_QUERY]):
-                state[STATE_LAMBDA] = ftl_lambda_for_spend(index, state[STATE_QUERY])
-            k += 1
-        acc[ACC_POS] = i
-        acc[ACC_T_END] = t_prev
-        acc[ACC_F_END] = f_prev
-        acc[ACC_SPEND] = cum
-        acc[ACC_EXPECTED] = cum_e
-        acc[ACC_RESULTS] = cum_r
-        acc[ACC_LAST_CHARGE] = last_ch
-        acc[ACC_EXHAUSTED_TS] = ex_ts
-        acc[ACC_WINS] = tot_wins
-        acc[ACC_BIDS] = tot_bids
-        acc[ACC_ABOVE] = tot_above
-        acc[ACC_MIN_COST] = tot_min_cost
-        acc[ACC_ROWS] = rows_seen
-        acc[ACC_CUM_TARGET] = budget * f_prev
-        acc[ACC_CURVE_POS] = cpos
-        return k_end
-
-    return replay_fused_loop
+                        if cum >= budget and ex_ts < 0:
+                            ex_ts = float(ts[r])
+        # F at the interval start is F at the previous end, so one evaluation each.
+        if k > 0:
+            f0 = f_prev
+        else:
+            f0, cpos = _curve_from(t_start, curve_t, curve_f, cpos)
+        f1, cpos = _curve_from(t_end, curve_t, curve_f, cpos)
+        f_prev = f1
+        target = budget * (f1 - f0)
+        tot_wins += wins
+        tot_bids += bids
+        tot_above += above
+        tot_min_cost += min_cost
+        rows_seen += j - i
+        fb[FB_K] = k
+        fb[FB_AUCTIONS] = j - i
+        fb[FB_WINS] = wins
+        fb[FB_RESULTS] = results
+        fb[FB_SPEND] = spend
+        fb[FB_EXPECTED_SPEND] = expected
+        fb[FB_TARGET] = target
+        fb[FB_CUM_SPEND] = cum
+        fb[FB_CUM_EXPECTED] = cum_e
+        fb[FB_CUM_TARGET] = budget * f1
+        fb[FB_CUM_RESULTS] = cum_r
+        fb[FB_REMAINING] = budget - cum
+        fb[FB_T_START] = t_start
+        fb[FB_T_END] = t_end
+        fb[FB_REMAINING_SHARE] = 1.0 - f1
+        fb[FB_ROWS_SEEN] = rows_seen
+        fb[FB_NORM] = norm if norm > 0.0 else max(target, 1e-300)
+        fb[FB_EXHAUSTED] = 1.0 if cum >= budget else 0.0
+        # the series: one row per bucket of ``group`` updates (``update`` = the last)
+        s_auctions += j - i
+        s_wins += wins
+        s_results += results
+        s_spend += spend
+        s_expected += expected
+        s_target += target
+        spos += 1
+        if spos == group or k == k_end - 1:
+            series[srow, SER_UPDATE] = k
+            series[srow, SER_TS] = t_end
+            series[srow, SER_LAMBDA] = lam
+            series[srow, SER_MU] = mu
+            series[srow, SER_AUCTIONS] = s_auctions
+            series[srow, SER_WINS] = s_wins
+            series[srow, SER_RESULTS] = s_results
+            series[srow, SER_SPEND] = s_spend
+            series[srow, SER_EXPECTED] = s_expected
+            series[srow, SER_TARGET] = s_target
+            series[srow, SER_CUM_SPEND] = cum
+            series[srow, SER_CUM_TARGET] = budget * f1
+        if spos == group:
+            spos = 0
+            srow += 1
+            s_auctions = 0.0
+            s_wins = 0.0
+            s_results = 0.0
+            s_spend = 0.0
+            s_expected = 0.0
+            s_target = 0.0
+        if feed_index:
+            ftl_insert(index, value[i:j], price[i:j])
+        i = j
+        t_prev = t_end
+        update_inline(state, params, fb)
+        if feed_index and not np.isnan(state[STATE_QUERY]):
+            state[STATE_LAMBDA] = ftl_lambda_for_spend(index, state[STATE_QUERY])
+        k += 1
+    acc[ACC_POS] = i
+    acc[ACC_T_END] = t_prev
+    acc[ACC_F_END] = f_prev
+    acc[ACC_SPEND] = cum
+    acc[ACC_EXPECTED] = cum_e
+    acc[ACC_RESULTS] = cum_r
+    acc[ACC_LAST_CHARGE] = last_ch
+    acc[ACC_EXHAUSTED_TS] = ex_ts
+    acc[ACC_WINS] = tot_wins
+    acc[ACC_BIDS] = tot_bids
+    acc[ACC_ABOVE] = tot_above
+    acc[ACC_MIN_COST] = tot_min_cost
+    acc[ACC_ROWS] = rows_seen
+    acc[ACC_CUM_TARGET] = budget * f_prev
+    acc[ACC_CURVE_POS] = cpos
+    return k_end
 
 
-@njit(cache=True, nogil=True)
-def no_update(state, params, fb):
-    """The update of the generic path's compiled part (the Python update runs after)."""
-    return
+_FUSED: dict[tuple[object, bool], object] = {}
+
+
+def fused_loop(update, one_row: bool = False):
+    """The replay loop compiled with ``update`` (an ``@njit`` function
+    ``update(state, params, fb)``: ``fb`` the float64 array, or in the per-request stretch a
+    tuple of ``FB_SIZE`` floats) inlined at each boundary; built once per (update function,
+    ``one_row``) and process, and cached on disk where the update can be imported by name
+    (see ``replay.kernels._fused_build``).
+
+    ``one_row``: also compile the per-request stretch (see the module docstring). A separate
+    build because its code, even never run, slowed the batch passes by about 8 % (measured
+    in interleaved runs; LLVM allocates registers over the whole function).
+
+    Inlining matters: a call to a separately compiled function passing three arrays costs
+    more (reference counting) than a per-request rule's whole update.
+    """
+    key = (update, bool(one_row))
+    loop = _FUSED.get(key)
+    if loop is None:
+        if key == (no_update, False):
+            loop = replay_fused_loop
+        else:
+            from replay.kernels._fused_build import build_fused_loop
+
+            loop = build_fused_loop(update, bool(one_row))
+        _FUSED[key] = loop
+    return loop
+
+
+def replay_fused(update, *args, one_row: bool = False):
+    """``fused_loop(update, one_row)(*args)``: see ``replay_fused_loop`` for the arguments."""
+    return fused_loop(update, one_row)(*args)
