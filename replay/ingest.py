@@ -636,12 +636,15 @@ def _connect(tmp: Path) -> duckdb.DuckDBPyConnection:
 
 
 def ingest(sources: Sequence[str | Path], into: str | Path,
-           campaigns: str | Path | None = None, progress: bool = False) -> IngestReport:
+           campaigns: str | Path | None = None, progress: bool = False,
+           on_wait=None) -> IngestReport:
     """Validate auction-log files and add them to the catalog at ``into``.
 
     ``sources``: files, globs or folders of Parquet, CSV (header line) or Arrow IPC.
     ``campaigns``: optional campaign table; its rows replace rows of the same campaign_id.
-    A file whose content hash is already recorded in the catalog is skipped. Raises
+    A file whose content hash is already recorded in the catalog is skipped. Ingests into
+    one catalog run one at a time (``catalog_write_lock``; ``on_wait(message)`` is called
+    if this one has to wait for another). Raises
     :class:`InputError` (and writes nothing) on a missing required column, an unreadable
     file, a file with no rows or a bad campaign table.
     """
@@ -650,50 +653,116 @@ def ingest(sources: Sequence[str | Path], into: str | Path,
     report = IngestReport(catalog=catalog)
     if catalog.exists() and not catalog.is_dir():
         raise InputError(f"{catalog}: exists and is not a folder")
-    meta = read_catalog_json(catalog) if catalog.is_dir() else None
-    if meta is None and catalog.is_dir() and any(catalog.iterdir()):
-        raise InputError(f"{catalog}: folder exists, is not empty and is not a catalog "
-                         f"(no {CATALOG_JSON}); choose a new or empty folder")
-    known = {s["sha256"]: s for s in (meta or {}).get("sources", [])}
-
-    files = resolve_sources(sources)
-    new: list[tuple[Path, str, list[str], str]] = []  # path, format, names, sha
-    seen_hash: set[str] = set()
-    for path in files:
-        fmt, names = inspect_source(path)
-        sha = file_sha256(path)
-        if sha in known or sha in seen_hash:
-            report.skipped.append(str(path))
-            report.files.append({"path": str(path), "format": fmt, "sha256": sha,
-                                 "status": "skipped", "rows_read": 0})
-            continue
-        seen_hash.add(sha)
+    _check_is_catalog(catalog, read_catalog_json(catalog) if catalog.is_dir() else None)
+    # Reading and hashing the sources is the slow part and needs no lock.
+    files = [(path, *inspect_source(path), file_sha256(path))
+             for path in resolve_sources(sources)]
+    for path, _fmt, names, _sha in files:
         _check_required(path, names, REQUIRED_AUCTION_COLUMNS, "the auction log")
-        new.append((path, fmt, names, sha))
-
     table = read_campaign_table(campaigns) if campaigns is not None else None
     if table is not None:
         report.campaign_table_rows = table.num_rows
 
     created = not catalog.exists()
     catalog.mkdir(parents=True, exist_ok=True)
-    ingest_id = dt.datetime.now(dt.UTC).strftime("%Y%m%dT%H%M%S") + "-" + uuid.uuid4().hex[:8]
-    tmp = catalog / f"_tmp-{ingest_id}"
-    tmp.mkdir()
-    try:
-        total_bytes = sum(p.stat().st_size for p, *_ in new)
-        with _steps(progress and total_bytes >= PROGRESS_MIN_BYTES, 6) as step:
-            stats = _ingest_files(new, catalog, tmp, ingest_id, step) if new else None
-            step("campaign table")
-            meta = _commit(catalog, tmp, meta, new, stats, table, ingest_id, report)
-    except BaseException:
+    with catalog_write_lock(catalog, on_wait):
+        # Read again under the lock: another ingest may have committed while we hashed.
+        meta = read_catalog_json(catalog)
+        known = {s["sha256"]: s for s in (meta or {}).get("sources", [])}
+        new: list[tuple[Path, str, list[str], str]] = []  # path, format, names, sha
+        seen_hash: set[str] = set()
+        ingest_id = (dt.datetime.now(dt.UTC).strftime("%Y%m%dT%H%M%S") + "-"
+                     + uuid.uuid4().hex[:8])
+        tmp = catalog / f"_tmp-{ingest_id}"
+        try:
+            _check_is_catalog(catalog, meta)
+            for path, fmt, names, sha in files:
+                if sha in known or sha in seen_hash:
+                    report.skipped.append(str(path))
+                    report.files.append({"path": str(path), "format": fmt, "sha256": sha,
+                                         "status": "skipped", "rows_read": 0})
+                    continue
+                seen_hash.add(sha)
+                new.append((path, fmt, names, sha))
+            tmp.mkdir()
+            total_bytes = sum(p.stat().st_size for p, *_ in new)
+            with _steps(progress and total_bytes >= PROGRESS_MIN_BYTES, 6) as step:
+                stats = _ingest_files(new, catalog, tmp, ingest_id, step) if new else None
+                step("campaign table")
+                meta = _commit(catalog, tmp, meta, new, stats, table, ingest_id, report)
+        except BaseException:
+            shutil.rmtree(tmp, ignore_errors=True)
+            if created and read_catalog_json(catalog) is None:
+                shutil.rmtree(catalog, ignore_errors=True)  # waiters start it afresh
+            raise
         shutil.rmtree(tmp, ignore_errors=True)
-        if created:
-            shutil.rmtree(catalog, ignore_errors=True)
-        raise
-    shutil.rmtree(tmp, ignore_errors=True)
     report.seconds = time.perf_counter() - started
     return report
+
+
+#: The lock file of a catalog (``catalog_write_lock``); it holds the writer's pid and start.
+LOCK_FILE = ".lock"
+
+
+def _check_is_catalog(catalog: Path, meta: dict | None) -> None:
+    """A folder without ``catalog.json`` is a new catalog only if it holds nothing but the
+    traces of an ingest creating it (the lock file, staging folders)."""
+    if meta is not None or not catalog.is_dir():
+        return
+    if any(not (e.name == LOCK_FILE or e.name.startswith("_tmp-")) for e in catalog.iterdir()):
+        raise InputError(f"{catalog}: folder exists, is not empty and is not a catalog "
+                         f"(no {CATALOG_JSON}); choose a new or empty folder")
+
+
+@contextmanager
+def catalog_write_lock(catalog: Path, on_wait=None) -> Iterator[None]:
+    """Hold the catalog's exclusive write lock (``flock`` on ``catalog/.lock``).
+
+    Two ingests into one catalog would otherwise both read ``catalog.json`` before either
+    commits, and the later commit would drop the earlier one's sources and row counts. The
+    second ingest waits instead; ``on_wait(message)`` is called once if it has to. The
+    kernel releases the lock when the holder exits, even on a crash, so a lock is never
+    left stale. Where ``fcntl`` does not exist (Windows) ingests are not serialized.
+    """
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - not on the platforms we test
+        yield
+        return
+    path = catalog / LOCK_FILE
+    waited = False
+    while True:
+        catalog.mkdir(parents=True, exist_ok=True)
+        fh = open(path, "a+")  # noqa: SIM115 (closed below or by the with block)
+        try:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            if on_wait is not None and not waited:
+                fh.seek(0)
+                holder = fh.read().strip() or "another process"
+                on_wait(f"{catalog}: waiting for the ingest holding its lock ({holder})")
+            waited = True
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX)
+        # A failed first ingest removes the folder, lock file included: lock the new one.
+        try:
+            if os.stat(path).st_ino == os.fstat(fh.fileno()).st_ino:
+                break
+        except FileNotFoundError:
+            pass
+        fh.close()
+    with fh:
+        try:
+            fh.seek(0)
+            fh.truncate()
+            fh.write(f"pid {os.getpid()}, since "
+                     f"{dt.datetime.now(dt.UTC).isoformat(timespec='seconds')}\n")
+            fh.flush()
+            yield
+        finally:
+            fh.seek(0)
+            fh.truncate()
+            fh.flush()
+            fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
 
 
 def _ingest_files(new: list[tuple[Path, str, list[str], str]], catalog: Path, tmp: Path,

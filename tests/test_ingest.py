@@ -355,3 +355,71 @@ def test_campaign_table_coverage_warnings_and_upsert(tmp_path: Path) -> None:
     specs = Catalog(tmp_path / "cat").campaigns()
     assert {k: v.budget for k, v in specs.items()} == {"c0": 10.0, "c1": 25.0, "c2": 7.0,
                                                        "c9": 5.0}
+
+
+def _log_with_ids(path: Path, seed: int, prefix: str, n: int = 300) -> int:
+    table = _good_table(n=n, seed=seed)
+    table = table.set_column(table.schema.get_field_index("request_id"), "request_id",
+                             pa.array([f"{prefix}{i}" for i in range(n)]))
+    pq.write_table(table, path)
+    return n
+
+
+def test_an_ingest_waits_while_another_holds_the_catalog(tmp_path: Path) -> None:
+    import threading
+    import time
+
+    from replay.ingest import catalog_write_lock, read_catalog_json
+
+    cat = tmp_path / "cat"
+    n_a = _log_with_ids(tmp_path / "a.parquet", 1, "a")
+    n_b = _log_with_ids(tmp_path / "b.parquet", 2, "b")
+    ingest([tmp_path / "a.parquet"], cat)
+    waits: list[str] = []
+    out: dict = {}
+    with catalog_write_lock(cat):
+        worker = threading.Thread(target=lambda: out.update(
+            report=ingest([tmp_path / "b.parquet"], cat, on_wait=waits.append)))
+        worker.start()
+        for _ in range(600):  # until it reaches the lock (it hashes its input first)
+            if waits or not worker.is_alive():
+                break
+            time.sleep(0.05)
+        assert waits and "waiting for the ingest holding its lock (pid" in waits[0], waits
+        assert worker.is_alive()
+        assert len(read_catalog_json(cat)["sources"]) == 1  # nothing committed meanwhile
+    worker.join(timeout=120)
+    assert not worker.is_alive() and out["report"].accepted == n_b
+    assert Catalog(cat).row_count() == n_a + n_b
+    assert len(read_catalog_json(cat)["sources"]) == 2
+
+
+def test_concurrent_ingests_into_one_new_catalog_keep_every_row(tmp_path: Path) -> None:
+    # Without the lock both would read the same (absent) catalog.json and the later commit
+    # would drop the earlier one's sources and row counts.
+    import threading
+
+    from replay.ingest import read_catalog_json
+
+    cat = tmp_path / "cat"
+    sizes = {name: _log_with_ids(tmp_path / f"{name}.parquet", seed, name, n)
+             for name, seed, n in (("a", 1, 300), ("b", 2, 500), ("c", 3, 700))}
+    errors: list[BaseException] = []
+
+    def run(name: str) -> None:
+        try:
+            ingest([tmp_path / f"{name}.parquet"], cat)
+        except BaseException as exc:  # reported below
+            errors.append(exc)
+
+    workers = [threading.Thread(target=run, args=(name,)) for name in sizes]
+    for w in workers:
+        w.start()
+    for w in workers:
+        w.join(timeout=120)
+    assert not errors
+    meta = read_catalog_json(cat)
+    assert sorted(Path(s["path"]).name for s in meta["sources"]) == \
+        ["a.parquet", "b.parquet", "c.parquet"]
+    assert sum(meta["campaign_rows"].values()) == sum(sizes.values())
+    assert Catalog(cat).row_count() == sum(sizes.values())

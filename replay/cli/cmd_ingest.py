@@ -24,10 +24,12 @@ def ingest_command(
 ) -> None:
     """Check every row, write accepted rows to CATALOG/auctions (hive partitions by UTC date)
     and rejected rows, unchanged, with a reject_reason to CATALOG/_rejected. Files already
-    ingested (same content hash) are skipped. Prints rows read = accepted + rejected."""
+    ingested (same content hash) are skipped. Ingests into one catalog run one at a time
+    (a second one waits). Prints rows read = accepted + rejected."""
     from replay.ingest import format_report, ingest
 
-    report = ingest(sources, into, campaigns=campaigns, progress=not quiet)
+    report = ingest(sources, into, campaigns=campaigns, progress=not quiet,
+                    on_wait=lambda message: typer.echo(message, err=True))
     for line in format_report(report):
         typer.echo(line)
     typer.echo(f"done in {report.seconds:.1f} s")
