@@ -298,46 +298,74 @@ class Catalog:
             "code": pa.array(range(len(pl_list)), pa.int32())}))
         self._local.placements_registered = os.getpid()
 
-    def _arrays_query(self, ids: list[str], start_us, end_us) -> pa.Table:
+    #: Row order within a campaign: ts, then every other column (request_id and the
+    #: placement's (placement, pricing) pair, whose code is its rank in the sorted pairs),
+    #: as the Spark engine orders: a replay never depends on how the files were read.
+    _ORDER = ("ts_us", "request_id", "placement_code", "value", "min_win_price", "charge_prob")
+
+    def _arrays_query(self, ids: list[str], start_us, end_us) -> tuple[pa.Table, np.ndarray]:
+        """The rows of ``ids`` (unsorted) and the row order: campaigns in runs (in no
+        particular campaign order), each in ``_ORDER``. pyarrow sorts with the keys in
+        memory about 5x faster than DuckDB's ORDER BY over them; nulls sort last in both."""
         self._placement_table()
         where, params = self._where(ids, start_us, end_us)
-        return self.con.sql(
-            "SELECT campaign_id, epoch_us(ts) AS ts_us, value, min_win_price, charge_prob, "
-            f"code AS placement_code, pricing = '{FIRST_PRICE}' AS first_price, request_id "
-            f"FROM auctions JOIN __placement_codes USING (placement, pricing){where} "
-            # Ties in time broken by every other column, as the Spark engine does: the
-            # order (and so a replay) never depends on how the files were read.
-            "ORDER BY campaign_id, ts, request_id, placement, pricing, value, min_win_price, "
-            "charge_prob", params=params).to_arrow_table()
+        t = self.con.sql(
+            f"SELECT {'campaign_id, ' if len(ids) > 1 else ''}epoch_us(ts) AS ts_us, value, "
+            "min_win_price, charge_prob, code AS placement_code, "
+            f"pricing = '{FIRST_PRICE}' AS first_price, request_id "
+            f"FROM auctions JOIN __placement_codes USING (placement, pricing){where}",
+            params=params).to_arrow_table()
+        keys = [(c, "ascending") for c in self._ORDER]
+        if len(ids) > 1:  # group by campaign first (a dictionary index: any order will do)
+            codes = pc.dictionary_encode(t.column("campaign_id").combine_chunks()).indices
+            t = t.append_column("__campaign", codes)
+            keys.insert(0, ("__campaign", "ascending"))
+        order = pc.sort_indices(t, sort_keys=keys).to_numpy()
+        return t, order
 
-    def _to_arrays(self, campaign_id: str, t: pa.Table) -> CampaignArrays:
-        names = tuple(p for p, _ in self.placements())
+    @staticmethod
+    def _columns(t: pa.Table, request_ids: bool) -> dict[str, np.ndarray | None]:
+        """The kernel columns of a query result as numpy arrays, in its row order."""
         rid = t.column("request_id")
+        return {
+            "ts_us": _np(t.column("ts_us"), np.int64),
+            "value": _np(t.column("value"), np.float64),
+            "min_win_price": _np(t.column("min_win_price"), np.float64),
+            "charge_prob": _np(t.column("charge_prob"), np.float64),
+            "placement_code": _np(t.column("placement_code"), np.int32),
+            "first_price": _np(t.column("first_price"), np.bool_),
+            "request_id": None if not request_ids or rid.null_count == len(rid) else
+            np.asarray(rid.to_numpy(zero_copy_only=False), dtype=object),
+        }
+
+    def _to_arrays(self, campaign_id: str, cols: dict[str, np.ndarray | None],
+                   order: np.ndarray) -> CampaignArrays:
+        rid = cols["request_id"]
         return CampaignArrays(
             campaign_id=campaign_id,
-            ts_us=_np(t.column("ts_us"), np.int64),
-            value=_np(t.column("value"), np.float64),
-            min_win_price=_np(t.column("min_win_price"), np.float64),
-            charge_prob=_np(t.column("charge_prob"), np.float64),
-            placement_code=_np(t.column("placement_code"), np.int32),
-            first_price=_np(t.column("first_price"), np.bool_),
-            placements=names,
-            request_id=None if rid.null_count == len(rid) else
-            np.asarray(rid.to_pylist(), dtype=object),
+            ts_us=cols["ts_us"][order], value=cols["value"][order],
+            min_win_price=cols["min_win_price"][order],
+            charge_prob=cols["charge_prob"][order],
+            placement_code=cols["placement_code"][order],
+            first_price=cols["first_price"][order],
+            placements=tuple(p for p, _ in self.placements()),
+            request_id=None if rid is None else rid[order],
         )
 
     def arrays(self, campaign_id: str, start_us: int | None = None,
-               end_us: int | None = None) -> CampaignArrays:
+               end_us: int | None = None, *, request_ids: bool = False) -> CampaignArrays:
         """One campaign's accepted rows as numpy arrays sorted by ts (``start <= ts < end``).
 
         ``placement_code`` indexes :meth:`placements` (catalog-wide); ``placements`` of the
         result holds the placement names in that order. An unknown campaign gives no rows.
+        ``request_ids``: also load ``request_id`` (Python strings, a third of the load time;
+        only campaign groups need them, to see the requests their members share).
         """
-        t = self._arrays_query([campaign_id], start_us, end_us)
-        return self._to_arrays(campaign_id, t)
+        t, order = self._arrays_query([campaign_id], start_us, end_us)
+        return self._to_arrays(campaign_id, self._columns(t, request_ids), order)
 
-    def iter_arrays(self, campaign_ids: Sequence[str], start_us=None,
-                    end_us=None) -> Iterator[CampaignArrays]:
+    def iter_arrays(self, campaign_ids: Sequence[str], start_us=None, end_us=None, *,
+                    request_ids: bool = False) -> Iterator[CampaignArrays]:
         """:meth:`arrays` for many campaigns, in the given order, reading them in batches."""
         ids = list(campaign_ids)
         counts = self.campaign_row_counts()
@@ -348,18 +376,22 @@ class Catalog:
                 batch.append(ids[i])
                 rows += counts.get(ids[i], 0)
                 i += 1
-            t = self._arrays_query(batch, start_us, end_us)
-            # Rows come sorted by campaign_id: find each campaign's run.
-            runs: dict[str, tuple[int, int]] = {}
+            if len(batch) == 1:
+                yield self.arrays(batch[0], start_us, end_us, request_ids=request_ids)
+                continue
+            t, order = self._arrays_query(batch, start_us, end_us)
+            # The order puts each campaign's rows in one run.
+            runs: dict[str, np.ndarray] = {}
             if t.num_rows:
-                ree = pc.run_end_encode(t.column("campaign_id").combine_chunks())
+                cids = pc.take(t.column("campaign_id"), pa.array(order))
+                ree = pc.run_end_encode(cids.combine_chunks())
                 ends = ree.run_ends.to_pylist()
                 starts = [0] + ends[:-1]
-                runs = dict(zip(ree.values.to_pylist(), zip(starts, ends, strict=True),
-                                strict=True))
+                runs = {cid: order[lo:hi] for cid, lo, hi in
+                        zip(ree.values.to_pylist(), starts, ends, strict=True)}
+            cols = self._columns(t, request_ids)
             for cid in batch:
-                lo, hi = runs.get(cid, (0, 0))
-                yield self._to_arrays(cid, t.slice(lo, hi - lo))
+                yield self._to_arrays(cid, cols, runs.get(cid, order[:0]))
 
     def close(self) -> None:
         """Close this thread's connection (others close when their thread or process ends)."""

@@ -66,7 +66,7 @@ def test_arrays_round_trip(catalog) -> None:
     assert placements == [("feed", "second_price"), ("partner_a", "first_price"),
                           ("partner_b", "first_price")]
     for cid in ("k1", "k2", "k3"):
-        arr = cat.arrays(cid)
+        arr = cat.arrays(cid, request_ids=True)
         ts, rows = _expected(table, cid)
         assert arr.campaign_id == cid and len(arr) == len(ts)
         assert arr.ts_us.dtype == np.int64 and np.array_equal(arr.ts_us, ts)
@@ -209,7 +209,7 @@ def test_rows_tied_in_time_come_back_in_one_order(tmp_path: Path) -> None:
         pq.write_table(table.take(pa.array(perm)), tmp_path / f"log{k}.parquet")
         ingest([tmp_path / f"log{k}.parquet"], tmp_path / f"cat{k}",
                campaigns=tmp_path / "campaigns.csv")
-        got.append(Catalog(tmp_path / f"cat{k}").arrays("k1"))
+        got.append(Catalog(tmp_path / f"cat{k}").arrays("k1", request_ids=True))
     a, b = got
     assert len(a) > 0 and len(np.unique(a.ts_us)) < len(a)  # ties are really there
     sub = table.filter(pa.compute.equal(table["campaign_id"], "k1"))
@@ -221,6 +221,42 @@ def test_rows_tied_in_time_come_back_in_one_order(tmp_path: Path) -> None:
         assert np.array_equal(getattr(a, name), getattr(ref, name)), name
     assert list(a.request_id) == list(ref.request_id)
 
+
+
+def test_tied_rows_sort_by_every_column_with_missing_request_ids_last(tmp_path: Path) -> None:
+    # Reference: Python's sorted() on the rows as tuples (ts, request_id with None last,
+    # (placement, pricing), value, min_win_price, charge_prob); the catalog's stated order.
+    rng = np.random.default_rng(9)
+    n = 400
+    table = _table(n=n, seed=9)
+    ts = T0 + rng.integers(0, 6, n) * 3_600_000_000  # six timestamps: ties everywhere
+    rid = [None if rng.random() < 0.6 else f"q{i}" for i in range(n)]
+    value = rng.choice([0.001, 0.002, 0.003], n)  # ties in value too
+    table = table.set_column(0, "ts", pa.array(ts).cast(AUCTION_SCHEMA.field("ts").type))
+    table = table.set_column(table.schema.get_field_index("request_id"), "request_id",
+                             pa.array(rid, pa.string()))
+    table = table.set_column(table.schema.get_field_index("value"), "value", pa.array(value))
+    pq.write_table(table, tmp_path / "log.parquet")
+    ingest([tmp_path / "log.parquet"], tmp_path / "cat")
+    cat = Catalog(tmp_path / "cat")
+    d = table.to_pydict()
+    for cid in ("k1", "k2"):
+        rows = sorted(
+            (int(t), (r is None, r or ""), (p, q), v, m, c)
+            for t, k, p, q, v, m, r, c in zip(ts, d["campaign_id"], d["placement"],
+                                                d["pricing"], d["value"], d["min_win_price"],
+                                                d["request_id"], d["charge_prob"], strict=True)
+            if k == cid)
+        placements = cat.placements()
+        for arr in (cat.arrays(cid, request_ids=True),
+                    next(a for a in cat.iter_arrays(["k3", cid], request_ids=True)
+                         if a.campaign_id == cid)):
+            got = [(int(t), (r is None, r or ""), placements[pc_], v, m, c)
+                   for t, r, pc_, v, m, c in zip(arr.ts_us, arr.request_id, arr.placement_code,
+                                                 arr.value, arr.min_win_price, arr.charge_prob,
+                                                 strict=True)]
+            assert got == rows
+    assert cat.arrays("k1").request_id is None  # loaded only when asked for
 
 def test_datetime_us_matches_numpy_datetime64() -> None:
     # Reference: numpy's datetime64[us] counts microseconds since 1970-01-01 UTC.

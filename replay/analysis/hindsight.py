@@ -240,7 +240,7 @@ def _solve_unit(catalog: Any, unit: _Unit, start_us: int | None, end_us: int | N
         for s in unit.specs:
             lo = max([x for x in (start_us, s.start_us) if x is not None], default=None)
             hi = min([x for x in (end_us, s.end_us) if x is not None], default=None)
-            parts.append(catalog.arrays(s.campaign_id, lo, hi))
+            parts.append(catalog.arrays(s.campaign_id, lo, hi, request_ids=True))
         budgets = [s.budget for s in unit.specs]
         bad = [s.campaign_id for s in unit.specs
                if s.budget is None or not math.isfinite(s.budget) or s.budget <= 0]

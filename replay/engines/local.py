@@ -515,7 +515,7 @@ def group_optima(cat: Any, specs: Sequence[CampaignSpec], groups: Mapping[str, l
         parts = []
         for cid in members:
             cw = campaign_window(windows, by_id[cid])
-            parts.append(cat.arrays(cid, cw.start_us, cw.end_us) if not cw.empty
+            parts.append(cat.arrays(cid, cw.start_us, cw.end_us, request_ids=True) if not cw.empty
                          else _empty_arrays(cid))
         budget = sum(float(by_id[c].budget) for c in members)
         row = solve_campaign_arrays(parts, CampaignSpec(gid, budget), budget_scale=budget_scale)
