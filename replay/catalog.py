@@ -1,9 +1,11 @@
 """Read access to a catalog written by :func:`replay.ingest.ingest`.
 
 DuckDB views over the catalog's Parquet files: ``auctions`` (hive partitions
-``auctions/date=YYYY-MM-DD``), ``campaigns`` and ``rejected``. Each thread of each process
-opens its own DuckDB connection, so a :class:`Catalog` can be pickled into worker processes
-(only its path travels).
+``auctions/date=YYYY-MM-DD``), ``campaigns`` and ``rejected``. A :class:`Catalog` reads
+the data files of the ingests recorded in ``catalog.json`` when it was opened (a snapshot:
+an ingest committing meanwhile is not seen half-done, and not at all by this instance).
+Each thread of each process opens its own DuckDB connection, so a :class:`Catalog` can be
+pickled into worker processes (its path and snapshot travel).
 """
 
 from __future__ import annotations
@@ -24,9 +26,9 @@ import pyarrow.parquet as pq
 
 from replay.errors import InputError, UsageError
 from replay.ingest import (
-    AUCTIONS_DIR,
     CAMPAIGNS_FILE,
     CATALOG_JSON,
+    committed_files,
     connect_duckdb,
     read_catalog_json,
 )
@@ -36,7 +38,6 @@ from replay.schema import (
     FIRST_PRICE,
     PARTITION_COLUMN,
     REJECT_REASON_COLUMN,
-    REJECTED_DIR,
     CampaignArrays,
     CampaignSpec,
     datetime_us,
@@ -106,15 +107,22 @@ class Catalog:
             raise InputError(f"{self.path}: not a catalog (no {CATALOG_JSON}); create one with "
                              "`replay ingest SRC --into CATALOG`")
         self.meta = meta
+        self._auction_files, self._rejected_files = committed_files(self.path, meta)
         self._local = threading.local()
         self._cache: dict[str, object] = {}
 
-    # -- pickling: only the path crosses process boundaries
+    # -- pickling: the path and the snapshot (metadata, file lists) cross processes, so
+    # every worker reads the same files as the parent even if an ingest commits meanwhile
     def __getstate__(self) -> dict:
-        return {"path": str(self.path)}
+        return {"path": str(self.path), "meta": self.meta,
+                "files": (self._auction_files, self._rejected_files)}
 
     def __setstate__(self, state: dict) -> None:
-        self.__init__(state["path"])
+        self.path = Path(state["path"])
+        self.meta = state["meta"]
+        self._auction_files, self._rejected_files = state["files"]
+        self._local = threading.local()
+        self._cache = {}
 
     def __repr__(self) -> str:
         return f"Catalog({str(self.path)!r})"
@@ -132,11 +140,10 @@ class Catalog:
         return con
 
     def _create_views(self, con: duckdb.DuckDBPyConnection) -> None:
-        auctions_glob = self.path / AUCTIONS_DIR / "*" / "*.parquet"
-        if any((self.path / AUCTIONS_DIR).glob("*/*.parquet")):
+        if self._auction_files:
             con.execute(
                 "CREATE OR REPLACE VIEW auctions AS SELECT * FROM read_parquet("
-                f"{_lit(str(auctions_glob))}, hive_partitioning = true, "
+                f"{_file_list(self.path, self._auction_files)}, hive_partitioning = true, "
                 f"hive_types = {{'{PARTITION_COLUMN}': DATE}})")
         else:
             cols = ", ".join(f"CAST(NULL AS {_duck_type(c.type)}) AS {c.name}"
@@ -151,10 +158,10 @@ class Catalog:
             cols = ", ".join(f"CAST(NULL AS {_duck_type(f.type)}) AS \"{f.name}\""
                              for f in CAMPAIGN_SCHEMA)
             con.execute(f"CREATE OR REPLACE VIEW campaigns AS SELECT {cols} WHERE false")
-        rejected = self.path / REJECTED_DIR
-        if any(rejected.glob("*.parquet")):
+        if self._rejected_files:
             con.execute("CREATE OR REPLACE VIEW rejected AS SELECT * FROM read_parquet("
-                        f"{_lit(str(rejected / '*.parquet'))}, union_by_name = true)")
+                        f"{_file_list(self.path, self._rejected_files)}, "
+                        "union_by_name = true)")
         else:
             con.execute("CREATE OR REPLACE VIEW rejected AS SELECT "
                         f"CAST(NULL AS VARCHAR) AS {REJECT_REASON_COLUMN}, "
@@ -278,9 +285,8 @@ class Catalog:
         """Stable hash of the catalog's contents: data file names and sizes, the recorded
         source hashes and the campaign table bytes."""
         h = hashlib.sha256()
-        for sub in (AUCTIONS_DIR, REJECTED_DIR):
-            for f in sorted((self.path / sub).rglob("*.parquet")):
-                h.update(f"{f.relative_to(self.path).as_posix()}:{f.stat().st_size}\n".encode())
+        for rel in sorted(self._auction_files + self._rejected_files):
+            h.update(f"{rel}:{(self.path / rel).stat().st_size}\n".encode())
         for s in sorted(x["sha256"] for x in self.meta.get("sources", [])):
             h.update(s.encode())
         campaigns = self.path / CAMPAIGNS_FILE
@@ -399,6 +405,11 @@ class Catalog:
         if con is not None:
             con.close()
             self._local.con = None
+
+
+def _file_list(path: Path, files: Sequence[str]) -> str:
+    """A DuckDB list literal of the files (relative to ``path``)."""
+    return "[" + ", ".join(_lit(str(path / f)) for f in files) + "]"
 
 
 def _duck_type(t: pa.DataType) -> str:

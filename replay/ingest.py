@@ -577,6 +577,35 @@ def read_catalog_json(catalog: Path) -> dict | None:
     return meta
 
 
+def _ingest_id_of(name: str) -> str | None:
+    """The ingest id in a data file's name (``part-<id>-<k>.parquet``,
+    ``rejected-<id>.parquet``), None for a name ingest does not write."""
+    stem = name.removesuffix(".parquet")
+    if stem.startswith("part-") and stem.count("-") >= 2:
+        return stem[len("part-"):stem.rindex("-")]
+    if stem.startswith("rejected-"):
+        return stem[len("rejected-"):]
+    return None
+
+
+def committed_files(path: Path, meta: dict) -> tuple[list[str], list[str]]:
+    """The catalog's data files (paths relative to it, sorted) of the ingests recorded in
+    ``meta``. Ingest moves its files in before it writes ``catalog.json``, so files of an
+    ingest still committing are on disk but not yet recorded: leaving them out keeps a
+    reader from seeing half of an ingest, with no lock."""
+    committed = {x["ingest_id"] for x in meta.get("ingests", [])}
+
+    def keep(f: Path) -> bool:
+        ingest_id = _ingest_id_of(f.name)
+        return ingest_id is None or ingest_id in committed
+
+    auctions = sorted(f.relative_to(path).as_posix()
+                      for f in (path / AUCTIONS_DIR).glob("*/*.parquet") if keep(f))
+    rejected = sorted(f.relative_to(path).as_posix()
+                      for f in (path / REJECTED_DIR).glob("*.parquet") if keep(f))
+    return auctions, rejected
+
+
 def _write_json_atomic(path: Path, data: dict) -> None:
     tmp = path.with_name(path.name + ".tmp")
     tmp.write_text(json.dumps(data, indent=2, sort_keys=False, default=str) + "\n")
@@ -687,7 +716,7 @@ def ingest(sources: Sequence[str | Path], into: str | Path,
             tmp.mkdir()
             total_bytes = sum(p.stat().st_size for p, *_ in new)
             with _steps(progress and total_bytes >= PROGRESS_MIN_BYTES, 6) as step:
-                stats = _ingest_files(new, catalog, tmp, ingest_id, step) if new else None
+                stats = _ingest_files(new, catalog, meta, tmp, ingest_id, step) if new else None
                 step("campaign table")
                 meta = _commit(catalog, tmp, meta, new, stats, table, ingest_id, report)
         except BaseException:
@@ -765,8 +794,8 @@ def catalog_write_lock(catalog: Path, on_wait=None) -> Iterator[None]:
             fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
 
 
-def _ingest_files(new: list[tuple[Path, str, list[str], str]], catalog: Path, tmp: Path,
-                  ingest_id: str, step) -> dict:
+def _ingest_files(new: list[tuple[Path, str, list[str], str]], catalog: Path,
+                  meta: dict | None, tmp: Path, ingest_id: str, step) -> dict:
     """Stage, validate, de-duplicate and write one batch of new files into ``tmp``."""
     staged = tmp / "staged"
     staged.mkdir()
@@ -798,8 +827,8 @@ def _ingest_files(new: list[tuple[Path, str, list[str], str]], catalog: Path, tm
 
     con = _connect(tmp)
     try:
-        return _run_sql(con, list(groups.values()), scan_of, order, rows_of, catalog, tmp,
-                        ingest_id, step)
+        return _run_sql(con, list(groups.values()), scan_of, order, rows_of, catalog, meta,
+                        tmp, ingest_id, step)
     except duckdb.Error as exc:
         raise InputError(f"{new[0][0]}{' (and other inputs)' if len(new) > 1 else ''}: "
                          f"cannot read ({_first_line(exc)})") from None
@@ -1115,8 +1144,8 @@ def _count_rejected(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
 
 
 def _run_sql(con: duckdb.DuckDBPyConnection, groups: list[_Group], scan_of: dict[str, Path],
-             order: list[str], rows_of: dict[str, int], catalog: Path, tmp: Path,
-             ingest_id: str, step) -> dict:
+             order: list[str], rows_of: dict[str, int], catalog: Path, meta: dict | None,
+             tmp: Path, ingest_id: str, step) -> dict:
     typed, raw = zip(*(_group_view_sql(g) for g in groups), strict=True)
     con.execute("CREATE TEMP VIEW v AS " + " UNION ALL ".join(typed))
     files_tbl = pa.table({"__file": order, "__fidx": list(range(len(order))),
@@ -1132,7 +1161,9 @@ def _run_sql(con: duckdb.DuckDBPyConnection, groups: list[_Group], scan_of: dict
             raise InputError(f"{scan_of[scan]}: no input rows")
     rows_read = sum(per_file.values())
 
-    existing = sorted((catalog / AUCTIONS_DIR).glob("*/*.parquet"))
+    # Rows already in the catalog: the files of recorded ingests (a crash between moving
+    # files in and writing catalog.json leaves files no reader sees; they do not count).
+    existing = committed_files(catalog, meta or {})[0]
     out_auctions = tmp / AUCTIONS_DIR
     cols = ", ".join(c.name for c in AUCTION_COLUMNS)
     select = f"SELECT {cols} FROM (SELECT * FROM v WHERE ok)"
@@ -1188,11 +1219,11 @@ def _run_sql(con: duckdb.DuckDBPyConnection, groups: list[_Group], scan_of: dict
                 " SEMI JOIN dupkeys USING (__h)"
                 " JOIN __files USING (__file)) WHERE rn > 1")
         if existing:
-            glob_old = _lit(str(catalog / AUCTIONS_DIR / "*" / "*.parquet"))
+            old_files = "[" + ", ".join(_lit(str(catalog / f)) for f in existing) + "]"
             parts.append(
                 "SELECT __file, file_row_number FROM (SELECT * FROM v WHERE ok "
                 "AND request_id IS NOT NULL) vv SEMI JOIN (SELECT campaign_id, request_id FROM "
-                f"read_parquet({glob_old}) WHERE request_id IS NOT NULL) old "
+                f"read_parquet({old_files}) WHERE request_id IS NOT NULL) old "
                 "USING (campaign_id, request_id)")
         if parts:
             con.execute("CREATE TEMP TABLE losers AS " + " UNION ".join(parts))

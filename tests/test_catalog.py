@@ -273,3 +273,41 @@ def test_datetime_us_matches_numpy_datetime64() -> None:
         plus2 = dt.timezone(dt.timedelta(hours=2))
         assert datetime_us((naive + dt.timedelta(hours=2)).replace(tzinfo=plus2)) == expected
     assert datetime_us(dt.datetime(1970, 1, 2)) == US_PER_DAY
+
+
+def test_a_catalog_reads_only_committed_ingests_and_workers_share_its_snapshot(
+        tmp_path: Path) -> None:
+    # Ingest moves its data files in before it writes catalog.json (DEVELOPERS, "Catalog
+    # layout"). Files of an ingest that is still committing, or crashed there, are on disk
+    # but unrecorded: a reader leaves them out. A pickled Catalog (what a worker receives)
+    # keeps the parent's snapshot even after a later ingest commits.
+    import pickle
+    import shutil
+
+    from replay.ingest import read_catalog_json
+
+    table = _table(n=400, seed=5)
+    first, second = table.slice(0, 250), table.slice(250)
+    pq.write_table(first, tmp_path / "a.parquet")
+    pq.write_table(second, tmp_path / "b.parquet")
+    ingest([tmp_path / "a.parquet"], tmp_path / "cat")
+    cat = Catalog(tmp_path / "cat")
+    assert cat.row_count() == 250
+    fingerprint = cat.fingerprint()
+
+    # an ingest caught between moving its files in and recording them
+    part = next((tmp_path / "cat" / "auctions").glob("*/*.parquet"))
+    half = part.with_name("part-20990101T000000-deadbeef-0.parquet")
+    shutil.copy(part, half)
+    assert "20990101T000000-deadbeef" not in {x["ingest_id"] for x in
+                                              read_catalog_json(tmp_path / "cat")["ingests"]}
+    seen = Catalog(tmp_path / "cat")
+    assert seen.row_count() == 250 and seen.fingerprint() == fingerprint
+
+    sent = pickle.dumps(cat)  # to a worker that starts after the next ingest
+    half.unlink()
+    ingest([tmp_path / "b.parquet"], tmp_path / "cat")
+    worker_copy = pickle.loads(sent)
+    assert worker_copy.row_count() == 250  # the parent's snapshot
+    assert worker_copy.campaign_row_counts() == cat.campaign_row_counts()
+    assert Catalog(tmp_path / "cat").row_count() == 400

@@ -263,13 +263,11 @@ def _window(start_us: int | None, end_us: int | None,
     return lo, hi
 
 
-def _run_chunk(catalog_path: str, units: list[_Unit], start_us: int | None,
+def _run_chunk(catalog: Any, units: list[_Unit], start_us: int | None,
                end_us: int | None, budget_scale: float,
                curve: CurveSpec | None) -> list[dict[str, Any]]:
-    """Worker: open the catalog once, solve units one at a time (memory: one unit)."""
-    from replay.catalog import Catalog
-
-    catalog = Catalog(catalog_path)
+    """Worker: solve units one at a time (memory: one unit) from the parent's catalog
+    (pickled with its snapshot of the files, so every worker reads the same rows)."""
     return [_solve_unit(catalog, u, start_us, end_us, budget_scale, curve) for u in units]
 
 
@@ -351,7 +349,7 @@ def hindsight(source: Any, campaign_ids: Sequence[str] | None = None, start: Any
             # spawn: a forked child would inherit DuckDB's and numba's threads mid-state.
             with ProcessPoolExecutor(max_workers=n_workers,
                                      mp_context=get_context("spawn")) as pool:
-                futures = {pool.submit(_run_chunk, str(catalog.path), ch, start_us, end_us,
+                futures = {pool.submit(_run_chunk, catalog, ch, start_us, end_us,
                                        budget_scale, curve): ch for ch in chunks}
                 for fut in as_completed(futures):
                     for u, r in zip(futures[fut], fut.result(), strict=True):

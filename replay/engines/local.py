@@ -213,13 +213,13 @@ def _empty_arrays(cid: str) -> CampaignArrays:
 _WORKER: dict[str, Any] = {}
 
 
-def _init_worker(job: Job) -> None:
-    from replay.catalog import Catalog
-
+def _init_worker(job: Job, catalog: Any) -> None:
     # One BLAS/numba thread per worker: the pool is the parallelism.
     os.environ.setdefault("OMP_NUM_THREADS", "1")
     _WORKER["job"] = job
-    _WORKER["catalog"] = Catalog(job.catalog_path)
+    # The parent's catalog, pickled with its snapshot of the files: every worker reads the
+    # same rows even if an ingest commits during the backtest.
+    _WORKER["catalog"] = catalog
     _WORKER["rule"] = _rule_class(job.rule)
 
 
@@ -469,7 +469,7 @@ def backtest(catalog: Any, rule: Any, params: Mapping[str, Any] | None = None, *
         counts = cat.campaign_row_counts()
         # Largest first, so the pool is not left waiting on one big campaign at the end.
         ordered = sorted(todo, key=lambda s: (-counts.get(s.campaign_id, 0), s.campaign_id))
-        _run_pool(job, ordered, n_workers, handle)
+        _run_pool(job, cat, ordered, n_workers, handle)
 
     settings_df = settings_table(settings)
     if store is not None:
@@ -539,12 +539,12 @@ def group_optima(cat: Any, specs: Sequence[CampaignSpec], groups: Mapping[str, l
     return out
 
 
-def _run_pool(job: Job, specs: Sequence[CampaignSpec], n_workers: int,
+def _run_pool(job: Job, catalog: Any, specs: Sequence[CampaignSpec], n_workers: int,
               handle: Callable[[CampaignResult], None]) -> None:
     # spawn: a forked child would inherit the parent's DuckDB threads and numba state.
     ctx = get_context("spawn")
     with ProcessPoolExecutor(max_workers=n_workers, mp_context=ctx, initializer=_init_worker,
-                             initargs=(job,)) as pool:
+                             initargs=(job, catalog)) as pool:
         pending = {pool.submit(_worker_task, spec) for spec in specs}
         try:
             while pending:
