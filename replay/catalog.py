@@ -10,7 +10,6 @@ pickled into worker processes (its path and snapshot travel).
 
 from __future__ import annotations
 
-import datetime as dt
 import hashlib
 import os
 import threading
@@ -40,43 +39,11 @@ from replay.schema import (
     REJECT_REASON_COLUMN,
     CampaignArrays,
     CampaignSpec,
-    datetime_us,
+    to_us,
 )
 
 #: iter_arrays reads campaigns in batches of about this many rows (memory bound).
 ITER_BATCH_ROWS = 4_000_000
-
-
-def to_us(x: object) -> int | None:
-    """Microseconds since the epoch (UTC) from a datetime, date, ISO-8601 string or int.
-
-    Naive datetimes and strings without an offset are taken as UTC; an int is already
-    microseconds. None gives None.
-    """
-    if x is None:
-        return None
-    if isinstance(x, bool):
-        raise UsageError(f"not a time: {x!r}")
-    if isinstance(x, int | np.integer):
-        return int(x)
-    if isinstance(x, np.datetime64):
-        return int(x.astype("datetime64[us]").astype(np.int64))
-    if isinstance(x, str):
-        text = x.strip()
-        try:
-            value = dt.datetime.fromisoformat(text.replace(" UTC", "+00:00"))
-        except ValueError:
-            raise UsageError(f"not an ISO-8601 time: {x!r} (example 2026-03-01T00:00:00Z)")\
-                from None
-        x = value
-    if hasattr(x, "to_pydatetime"):  # pandas-like timestamps
-        x = x.to_pydatetime()
-    if isinstance(x, dt.datetime):
-        return datetime_us(x)
-    if isinstance(x, dt.date):
-        return to_us(dt.datetime(x.year, x.month, x.day, tzinfo=dt.UTC))
-    raise UsageError(f"not a time: {x!r} (give a datetime, a date, an ISO-8601 string or "
-                     "integer microseconds)")
 
 
 def _lit(text: str) -> str:

@@ -441,7 +441,7 @@ def _parse_number(x: object) -> float | None:
 
 
 def _parse_time(x: object) -> int | None:
-    from replay.catalog import to_us
+    from replay.schema import to_us
 
     if x is None or (isinstance(x, str) and not x.strip()):
         return None

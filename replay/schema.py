@@ -30,6 +30,45 @@ def datetime_us(x: dt.datetime) -> int:
     return (delta.days * 86_400 + delta.seconds) * US_PER_SECOND + delta.microseconds
 
 
+
+def to_us(value: object, what: str = "time") -> int | None:
+    """Microseconds since the epoch (UTC) from a datetime, date, ISO-8601 string, numpy
+    datetime64 or integer microseconds; None gives None. Naive datetimes and strings
+    without an offset are taken as UTC. ``what`` names the option or field in the error."""
+    from replay.errors import UsageError
+
+    def bad() -> UsageError:
+        return UsageError(f"{what} {value!r}: not a time; allowed: an ISO-8601 date or "
+                          "datetime such as 2026-03-02 or 2026-03-02T06:00:00Z (UTC), a "
+                          "datetime, a date or integer microseconds")
+
+    x = value
+    if x is None:
+        return None
+    if isinstance(x, bool):
+        raise bad()
+    if isinstance(x, int | np.integer):
+        return int(x)
+    if isinstance(x, np.datetime64):
+        if np.isnat(x):
+            raise bad()
+        return int(x.astype("datetime64[us]").astype(np.int64))
+    if isinstance(x, str):
+        text = x.strip().replace(" UTC", "+00:00")
+        if text.endswith("Z"):
+            text = text[:-1] + "+00:00"
+        try:
+            x = dt.datetime.fromisoformat(text)
+        except ValueError:
+            raise bad() from None
+    if hasattr(x, "to_pydatetime"):  # pandas-like timestamps
+        x = x.to_pydatetime()
+    if isinstance(x, dt.datetime):
+        return datetime_us(x)
+    if isinstance(x, dt.date):
+        return datetime_us(dt.datetime(x.year, x.month, x.day, tzinfo=dt.UTC))
+    raise bad()
+
 FIRST_PRICE = "first_price"
 SECOND_PRICE = "second_price"
 PRICING_RULES: tuple[str, ...] = (FIRST_PRICE, SECOND_PRICE)

@@ -117,8 +117,17 @@ def test_to_us_conversions() -> None:
     assert to_us(dt.datetime(2026, 3, 2, 0, 0, 0, 7, tzinfo=dt.UTC)) == T0 + 7
     assert to_us(np.datetime64("2026-03-02T00:00:00")) == T0
     assert to_us(T0) == T0 and to_us(None) is None
-    with pytest.raises(UsageError):
-        to_us("last week")
+    assert to_us("2026-03-02 00:00:00 UTC") == T0
+    with pytest.raises(UsageError, match="^--start 'last week': not a time"):
+        to_us("last week", "--start")
+    for bad in (np.datetime64("NaT"), True, 1.5):
+        with pytest.raises(UsageError, match="not a time"):
+            to_us(bad)
+    # the CLI windows and the catalog share this one conversion
+    from replay.engines import windows
+    from replay.schema import to_us as schema_to_us
+
+    assert windows.to_us is to_us is schema_to_us
 
 
 def test_facts_and_views(catalog) -> None:

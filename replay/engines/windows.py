@@ -11,11 +11,11 @@ import math
 import re
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from datetime import UTC, date, datetime, timedelta
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from replay.errors import UsageError
-from replay.schema import US_PER_DAY, US_PER_SECOND, CampaignSpec, datetime_us
+from replay.schema import US_PER_DAY, US_PER_SECOND, CampaignSpec, to_us
 
 #: Accepted duration suffixes and their length in microseconds.
 DURATION_UNITS: dict[str, int] = {
@@ -74,36 +74,6 @@ def format_duration(us: int) -> str:
 
 
 # ----------------------------------------------------------------------------- times
-
-
-def to_us(value: Any, option: str) -> int | None:
-    """A datetime, date, ISO-8601 string or int microseconds (UTC) -> int microseconds.
-
-    Naive datetimes and bare dates are taken as UTC.
-    """
-    if value is None:
-        return None
-    if isinstance(value, bool):
-        raise UsageError(f"{option} {value!r}: not a time; allowed: ISO date or datetime (UTC)")
-    if isinstance(value, int):
-        return int(value)
-    if isinstance(value, datetime):
-        return datetime_us(value)
-    if isinstance(value, date):
-        return datetime_us(datetime(value.year, value.month, value.day, tzinfo=UTC))
-    if isinstance(value, str):
-        text = value.strip()
-        if text.endswith("Z"):
-            text = text[:-1] + "+00:00"
-        try:
-            dt = datetime.fromisoformat(text)
-        except ValueError:
-            raise UsageError(f"{option} {value!r}: not a time; allowed: ISO date or datetime "
-                             "such as 2026-03-02 or 2026-03-02T06:00:00 (UTC)") from None
-        if dt.tzinfo is None:
-            dt = dt.replace(tzinfo=UTC)
-        return datetime_us(dt)
-    raise UsageError(f"{option} {value!r}: not a time; allowed: ISO date or datetime (UTC)")
 
 
 def iso(us: int | None) -> str | None:
