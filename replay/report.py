@@ -259,13 +259,17 @@ def _regret_distribution(t: pl.DataFrame, charts: _Charts) -> str:
 
 
 def _decomposition(t: pl.DataFrame, charts: _Charts) -> str:
-    cols = ["regret_unspent", "regret_overpayment", "regret_misallocation"]
-    if not all(c in t.columns for c in cols):
+    cols = ["regret_unspent", "regret_overpayment", "regret_misallocation",
+            "regret_cap_slack"]
+    if not all(c in t.columns for c in cols[:3]):
         return '<p class="note">This run has no regret decomposition.</p>'
-    k = t.filter(pl.all_horizontal(pl.col(c).is_not_null() for c in cols))
+    if "regret_cap_slack" not in t.columns:
+        t = t.with_columns(pl.lit(None, dtype=pl.Float64).alias("regret_cap_slack"))
+    k = t.filter(pl.all_horizontal(pl.col(c).is_not_null() for c in cols[:3]))
     if k.height == 0:
-        return ('<p class="note">No campaign has a decomposition (it is defined for the '
-                "budget-only optimum; capped campaigns have none).</p>")
+        return '<p class="note">No campaign has a regret decomposition.</p>'
+    if k["regret_cap_slack"].is_null().all() or not k["regret_cap_slack"].abs().sum() > 0:
+        cols = cols[:3]  # no cap binds (or a run written before the cap part existed)
     k = k.sort("regret", descending=True, nulls_last=True)
     note = ""
     if k.height > MAX_BARS:
@@ -274,7 +278,7 @@ def _decomposition(t: pl.DataFrame, charts: _Charts) -> str:
         k = k.head(MAX_BARS)
     ids = [_label(c) for c in k["campaign_id"].to_list()]
     names = {"regret_unspent": "unspent budget", "regret_overpayment": "overpayment",
-             "regret_misallocation": "misallocation"}
+             "regret_misallocation": "misallocation", "regret_cap_slack": "cap slack"}
     data = [{"type": "bar", "x": ids, "y": _clean(k[c].to_list()), "name": names[c],
              "marker": {"color": PALETTE[i]},
              "hovertemplate": "%{x}<br>" + names[c] + ": %{y:.4g} results<extra></extra>"}
@@ -285,10 +289,11 @@ def _decomposition(t: pl.DataFrame, charts: _Charts) -> str:
               "yaxis": {"title": {"text": "regret (results)"}}}
     return note + charts.add(data, layout, height=420) + (
         '<p class="note">Regret = optimum - replayed results, split exactly with the '
-        "optimum's multiplier &lambda;*: unspent budget &lambda;*(B - S), overpayment "
-        "&lambda;*(S - C<sub>won</sub>) (paying above the minimum winning price), and "
-        "misallocation (rows bought below the optimum's threshold, rows missed above "
-        "it).</p>")
+        "optimum's multipliers (&lambda;* for the budget, &mu;* for a binding cost-per-result "
+        "cap C): unspent budget &lambda;*(B - S), overpayment (&lambda;* + &mu;*)(S - "
+        "C<sub>won</sub>) (paying above the minimum winning price), cap slack &mu;*(C R - S) "
+        "(room left under the cap), and misallocation (rows bought below the optimum's "
+        "threshold, rows missed above it).</p>")
 
 
 def _thin(df: pl.DataFrame) -> pl.DataFrame:

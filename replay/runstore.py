@@ -55,10 +55,13 @@ TOTALS_SCHEMA: dict[str, pl.DataType] = {
     "opt_spend": pl.Float64, "opt_lambda": pl.Float64, "regret": pl.Float64,
     "relative_regret": pl.Float64, "regret_unspent": pl.Float64,
     "regret_overpayment": pl.Float64, "regret_misallocation": pl.Float64,
-    "pacing_error_max": pl.Float64, "pacing_error_mean": pl.Float64,
+    "regret_cap_slack": pl.Float64, "pacing_error_max": pl.Float64, "pacing_error_mean": pl.Float64,
     "lambda_final": pl.Float64, "lambda_volatility": pl.Float64,
     "bids_above_logged": pl.Float64,
 }
+#: Columns added after format_version 1 was first written: a run without them reads with
+#: nulls there (its regret split has no cap part).
+ADDED_COLUMNS: dict[str, tuple[str, ...]] = {"totals": ("regret_cap_slack",)}
 SERIES_SCHEMA: dict[str, pl.DataType] = {
     "setting_id": pl.Int32, "campaign_id": pl.String, "update": pl.Int64, "ts": _TS,
     "lambda": pl.Float64, "mu": pl.Float64, "auctions": pl.Int64, "wins": pl.Int64,
@@ -168,10 +171,19 @@ def conform(df: pl.DataFrame | None, table: str) -> pl.DataFrame:
     schema = SCHEMAS[table]
     if df is None or df.width == 0:
         return pl.DataFrame(schema=schema)
+    df = _with_added_columns(df, table)
     missing = [c for c in schema if c not in df.columns]
     if missing:
         raise ValueError(f"{table} table lacks columns {missing}")
     return df.select([pl.col(c).cast(t, strict=False) for c, t in schema.items()])
+
+
+def _with_added_columns(df: pl.DataFrame, table: str) -> pl.DataFrame:
+    """``df`` with the ``ADDED_COLUMNS`` of ``table`` it lacks, as nulls."""
+    added = [c for c in ADDED_COLUMNS.get(table, ()) if c not in df.columns]
+    if not added:
+        return df
+    return df.with_columns(pl.lit(None, dtype=SCHEMAS[table][c]).alias(c) for c in added)
 
 
 def _get(manifest: Mapping[str, Any], dotted: str) -> Any:
@@ -269,6 +281,7 @@ def open_run(path: str | Path, *, allow_running: bool = False) -> Run:
                    tables["placements"], settings)
     tables = {name: _read_table(run_dir / f"{name}.parquet") for name in TABLES}
     for name in PART_TABLES:
+        tables[name] = _with_added_columns(tables[name], name)
         cols = tables[name].columns
         missing = [c for c in SCHEMAS[name] if c not in cols]
         if missing:

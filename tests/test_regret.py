@@ -1,4 +1,4 @@
-"""Regret split: the three parts add up to upper_bound - results; each is >= 0 when feasible."""
+"""Regret split: the parts add up to upper_bound - results; each is >= 0 when feasible."""
 
 from __future__ import annotations
 
@@ -98,3 +98,49 @@ def test_budget_not_binding_is_all_misallocation():
     z = decompose_regret(budget=1.0, lambda_star=0.0, surplus=0.0, upper_bound=0.0,
                          results=0.0, spend=0.0, min_price_cost=0.0)
     assert math.isnan(z["relative_regret"]) and z["regret"] == 0.0
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_parts_add_up_when_a_cost_per_result_cap_binds(seed):
+    # Source: scipy.optimize.linprog (HiGHS) for the LP optimum and its dual multipliers;
+    # the four parts must add up to optimum - results (strong duality, module docstring).
+    from scipy.optimize import linprog
+
+    rng = np.random.default_rng(100 + seed)
+    n = 400
+    v = rng.exponential(1.0, n)
+    p = rng.lognormal(0.0, 1.0, n)
+    budget = 10.0 * p.sum()  # never binds
+    cap = 0.3 * float(np.median(p / v))  # cheap rows only: binds
+    sol = solve(v, p, budget, cap)
+    assert sol.binding == "cap" and sol.mu > 0 and sol.lambda_ == 0
+    res = linprog(-v, A_ub=np.vstack([p, p - cap * v]), b_ub=[budget, 0.0], bounds=(0, 1),
+                  method="highs")
+    assert res.status == 0
+    assert sol.upper_bound == pytest.approx(-res.fun, rel=1e-9)
+    assert sol.mu == pytest.approx(-res.ineqlin.marginals[1], rel=1e-6)
+
+    # An allocation that keeps the cap: rows in random order, each taken (at a markup
+    # above the minimum price) only if the spend stays under cap x results.
+    for trial in range(20):
+        markup = rng.uniform(1.0, 1.3, n)
+        won = np.zeros(n, bool)
+        spend = results = 0.0
+        for i in rng.permutation(n):
+            if rng.random() < 0.5 and spend + p[i] * markup[i] <= cap * (results + v[i]):
+                won[i] = True
+                spend += p[i] * markup[i]
+                results += v[i]
+        d = decompose_regret(budget=budget, lambda_star=sol.lambda_, surplus=sol.surplus,
+                             upper_bound=sol.upper_bound, results=results, spend=spend,
+                             min_price_cost=float(p[won].sum()), mu_star=sol.mu, cap=cap,
+                             dual_value=sol.dual_value)
+        scale = max(1.0, sol.upper_bound)
+        total = d["unspent"] + d["overpayment"] + d["cap_slack"] + d["misallocation"]
+        assert abs(total - (-res.fun - results)) <= 1e-9 * scale, trial
+        for key in ("unspent", "overpayment", "cap_slack", "misallocation"):
+            assert d[key] >= -1e-9 * scale, (trial, key, d[key])
+    # without the cap arguments a binding cap cannot be split
+    with pytest.raises(ValueError, match="needs cap and dual_value"):
+        decompose_regret(budget=budget, lambda_star=0.0, surplus=0.0, upper_bound=1.0,
+                         results=0.0, spend=0.0, min_price_cost=0.0, mu_star=sol.mu)

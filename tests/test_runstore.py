@@ -99,6 +99,19 @@ def test_corrupted_table_is_a_clear_error(tmp_path: Path) -> None:
         open_run(run_dir)
 
 
+
+def test_a_run_written_before_the_cap_part_reads_with_nulls_there(tmp_path: Path) -> None:
+    run_dir = _finished_run(tmp_path)
+    old = pl.read_parquet(run_dir / "totals.parquet").drop("regret_cap_slack")
+    old.write_parquet(run_dir / "totals.parquet")
+    run = open_run(run_dir)
+    assert run.totals["regret_cap_slack"].is_null().all()
+    assert run.totals["campaign_id"].to_list() == ["a", "b"]
+    # any other missing column is still an error
+    old.drop("regret_misallocation").write_parquet(run_dir / "totals.parquet")
+    with pytest.raises(RunStoreError, match="missing columns regret_misallocation"):
+        open_run(run_dir)
+
 def test_running_run_needs_resume(tmp_path: Path) -> None:
     run = tmp_path / "run"
     store = RunStore.create(run, _manifest())

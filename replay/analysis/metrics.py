@@ -178,7 +178,7 @@ def campaign_totals(replay: Any, opt: Any, *, budget: float, cap: float | None) 
     """The totals row of one campaign (columns of ``totals.parquet`` except ``setting_id``
     and ``exhausted_at``, which the engine adds as a timestamp).
 
-    Regret against the LP upper bound, its three-part split (``decompose_regret``), budget
+    Regret against the LP upper bound, its four-part split (``decompose_regret``), budget
     used, cap violation, pacing error and lambda volatility.
     """
     from replay.analysis.regret import decompose_regret
@@ -189,7 +189,8 @@ def campaign_totals(replay: Any, opt: Any, *, budget: float, cap: float | None) 
     min_cost = float(t["min_price_cost"])
     parts = decompose_regret(budget=float(budget), lambda_star=float(opt.lambda_),
                              surplus=float(opt.surplus), upper_bound=float(opt.upper_bound),
-                             results=results, spend=spend, min_price_cost=min_cost)
+                             results=results, spend=spend, min_price_cost=min_cost,
+                             mu_star=float(opt.mu), cap=cap, dual_value=float(opt.dual_value))
     ser = replay.series
     if ser.height:
         pe_max, pe_mean = pacing_error(ser["cum_spend"].to_numpy(), ser["cum_target"].to_numpy())
@@ -213,6 +214,7 @@ def campaign_totals(replay: Any, opt: Any, *, budget: float, cap: float | None) 
         "regret_unspent": float(parts["unspent"]),
         "regret_overpayment": float(parts["overpayment"]),
         "regret_misallocation": float(parts["misallocation"]),
+        "regret_cap_slack": float(parts["cap_slack"]),
         "pacing_error_max": pe_max, "pacing_error_mean": pe_mean,
         "lambda_final": _f(t.get("lambda_final", math.nan)), "lambda_volatility": vol,
         "bids_above_logged": _f(t.get("bids_above_logged", math.nan)),

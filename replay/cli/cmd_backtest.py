@@ -57,6 +57,7 @@ def print_campaign_table(result: Any, title: str) -> None:
             ("wins", "wins", False), ("regret_unspent", "unspent", False),
             ("regret_overpayment", "overpaid", False),
             ("regret_misallocation", "misalloc.", False),
+            ("regret_cap_slack", "cap slack", False),
             ("pacing_error_max", "max pacing gap", False), ("cap_violated", "cap viol.", False)]
     for _, head, _ in cols:
         table.add_column(head, justify="left" if head == "campaign" else "right")

@@ -590,7 +590,8 @@ class WhatIfResult:
 WHATIF_METRICS = ("budget", "max_cost_per_result", "auctions", "wins", "results", "spend",
                   "cost_per_result", "budget_used", "cap_violated", "optimum", "opt_spend",
                   "opt_lambda", "regret", "relative_regret", "regret_unspent",
-                  "regret_overpayment", "regret_misallocation", "pacing_error_max",
+                  "regret_overpayment", "regret_misallocation", "regret_cap_slack",
+                  "pacing_error_max",
                   "lambda_final", "bids_above_logged", "exhausted_at")
 
 
