@@ -26,7 +26,7 @@ import shutil
 import time
 import uuid
 from collections import deque
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -666,7 +666,7 @@ def _connect(tmp: Path) -> duckdb.DuckDBPyConnection:
 
 def ingest(sources: Sequence[str | Path], into: str | Path,
            campaigns: str | Path | None = None, progress: bool = False,
-           on_wait=None) -> IngestReport:
+           on_wait: Callable[[str], None] | None = None) -> IngestReport:
     """Validate auction-log files and add them to the catalog at ``into``.
 
     ``sources``: files, globs or folders of Parquet, CSV (header line) or Arrow IPC.
@@ -744,7 +744,8 @@ def _check_is_catalog(catalog: Path, meta: dict | None) -> None:
 
 
 @contextmanager
-def catalog_write_lock(catalog: Path, on_wait=None) -> Iterator[None]:
+def catalog_write_lock(catalog: Path,
+                       on_wait: Callable[[str], None] | None = None) -> Iterator[None]:
     """Hold the catalog's exclusive write lock (``flock`` on ``catalog/.lock``).
 
     Two ingests into one catalog would otherwise both read ``catalog.json`` before either
