@@ -118,6 +118,7 @@ def test_a_users_update_is_compiled_once_then_loaded_from_disk(tmp_path: Path) -
     assert (first["misses"], first["hits"]) == (1, 0)
     assert (second["misses"], second["hits"]) == (0, 1)
     assert len(list(cache.glob("fused_*.py"))) == 1
+    assert len(list(cache.glob("fused_*.used"))) == 1  # the use is marked for pruning
     # the same rule through the generic path (its Python update calls the numba one)
     generic = _run_user_rule(folder, cache, "generic")
     assert first["wins"] > 0
@@ -184,3 +185,31 @@ def test_an_update_without_an_import_name_is_built_in_memory(tmp_path: Path,
     assert runs[0]["wins"] > 0
     assert (runs[0]["spend"], runs[0]["wins"]) == (runs[1]["spend"], runs[1]["wins"])
     assert not list(tmp_path.glob("fused_*.py"))
+
+
+def test_builds_unused_for_a_month_are_pruned(tmp_path: Path) -> None:
+    import os
+    import time
+
+    from replay.kernels import _fused_build
+
+    cache = tmp_path / "__pycache__"
+    cache.mkdir()
+    old = time.time() - (_fused_build.PRUNE_AFTER_DAYS + 1) * 86_400
+    for stem in ("fused_old", "fused_old_but_used", "fused_new"):
+        (tmp_path / f"{stem}.py").write_text("# a build\n")
+        for suffix in (".replay_fused_loop-10.py311.nbi", ".replay_fused_loop-10.py311.1.nbc",
+                       ".cpython-311.pyc"):
+            (cache / f"{stem}{suffix}").write_bytes(b"x")
+    for stem in ("fused_old", "fused_old_but_used"):
+        os.utime(tmp_path / f"{stem}.py", (old, old))
+    (tmp_path / "fused_old_but_used.used").touch()  # loaded recently
+    (tmp_path / "unrelated.py").write_text("# not a build\n")
+    os.utime(tmp_path / "unrelated.py", (old, old))
+
+    assert _fused_build.prune_builds(tmp_path) == ["old"]
+    left = sorted(p.name for p in tmp_path.rglob("*") if p.is_file())
+    assert not [n for n in left if n.startswith("fused_old.") or n == "fused_old.py"]
+    assert "fused_old_but_used.py" in left and "fused_new.py" in left
+    assert "unrelated.py" in left
+    assert sum(n.startswith("fused_old_but_used.") for n in left) == 5  # .py .used + 3

@@ -8,7 +8,8 @@ the rule's module and ``ONE_ROW`` set, compiled with ``cache=True``. Its file na
 digest of everything the compiled code depends on (that source, the kernel and rule
 sources, the update's own source file, the numba version), so an edit anywhere there makes
 a new file instead of reusing stale machine code. The files live in ``fused_cache_dir()``
-and are safe to delete.
+and are safe to delete; a build unused for ``PRUNE_AFTER_DAYS`` is deleted when a new one
+is written.
 
 An update that cannot be imported by name (defined inside a function, in ``__main__``, or
 rebound) is built the same way in memory, without the disk cache. So is every update when
@@ -22,6 +23,7 @@ import importlib.util
 import inspect
 import os
 import sys
+import time
 from pathlib import Path
 from types import CodeType, ModuleType
 
@@ -113,6 +115,31 @@ def _load(path: Path, module_name: str) -> ModuleType:
     return module
 
 
+#: A build unused for this many days is deleted when a new build is written (each is
+#: about 0.5 MB with its compiled code, and every source edit makes new ones).
+PRUNE_AFTER_DAYS = 30
+
+
+def prune_builds(folder: Path, max_age_days: float = PRUNE_AFTER_DAYS) -> list[str]:
+    """Delete the builds in ``folder`` not used for ``max_age_days`` (their source, use
+    mark, bytecode and numba cache files); returns the digests removed."""
+    cutoff = time.time() - max_age_days * 86_400.0
+    removed = []
+    for source in folder.glob("fused_*.py"):
+        mark = source.with_suffix(".used")
+        try:
+            last = (mark if mark.exists() else source).stat().st_mtime
+            if last >= cutoff:
+                continue
+            stem = source.stem
+            for f in [source, mark, *(folder / "__pycache__").glob(f"{stem}.*")]:
+                f.unlink(missing_ok=True)
+        except OSError:
+            continue  # another process got there first
+        removed.append(stem.removeprefix("fused_"))
+    return removed
+
+
 def build_fused_loop(update: object, one_row: bool) -> object:
     """The loop with ``update`` compiled in (``one_row``: with the per-request stretch),
     from the disk cache when ``update`` can be imported by name."""
@@ -126,9 +153,13 @@ def build_fused_loop(update: object, one_row: bool) -> object:
         path = folder / f"fused_{digest}.py"
         try:
             if not path.is_file():
+                prune_builds(folder)
                 tmp = path.with_suffix(f".{os.getpid()}.tmp")
                 tmp.write_text(text)
                 os.replace(tmp, path)  # atomic: another process may write the same file
+            # Mark the use beside the source: touching the source itself would change the
+            # stamp numba checks and throw its cached code away.
+            path.with_suffix(".used").touch()
             return _load(path, f"replay_fused_{digest}").replay_fused_loop
         except OSError:
             pass
