@@ -577,7 +577,7 @@ def read_catalog_json(catalog: Path) -> dict | None:
     return meta
 
 
-def _ingest_id_of(name: str) -> str | None:
+def ingest_id_of(name: str) -> str | None:
     """The ingest id in a data file's name (``part-<id>-<k>.parquet``,
     ``rejected-<id>.parquet``), None for a name ingest does not write."""
     stem = name.removesuffix(".parquet")
@@ -596,7 +596,7 @@ def committed_files(path: Path, meta: dict) -> tuple[list[str], list[str]]:
     committed = {x["ingest_id"] for x in meta.get("ingests", [])}
 
     def keep(f: Path) -> bool:
-        ingest_id = _ingest_id_of(f.name)
+        ingest_id = ingest_id_of(f.name)
         return ingest_id is None or ingest_id in committed
 
     auctions = sorted(f.relative_to(path).as_posix()

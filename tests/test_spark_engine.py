@@ -340,3 +340,24 @@ def test_cli_engine_errors(tmp_path, capsys) -> None:
     code, _, err = _cli(["backtest", tmp_path, "--rule", "ftl", "--out", tmp_path / "r",
                          "--master", "local[2]"], capsys)
     assert code == 2 and "--master 'local[2]': only with --engine spark" in err
+
+
+@needs_spark
+def test_spark_reads_only_committed_ingests_as_the_catalog_does(spark, demo_catalog,
+                                                              tmp_path) -> None:
+    # A data file whose ingest is not recorded in catalog.json (one caught committing, or
+    # crashed there) is left out by Catalog (DEVELOPERS, "Catalog layout"); Spark too.
+    from replay.catalog import Catalog
+    from replay.engines.spark import read_catalog_frame
+
+    cat = tmp_path / "catalog"
+    shutil.copytree(demo_catalog, cat)
+    part = sorted((cat / "auctions").glob("*/*.parquet"))[0]
+    shutil.copy(part, part.with_name("part-20990101T000000-deadbeef-0.parquet"))
+    expected = Catalog(cat).row_count()
+    assert expected == Catalog(demo_catalog).row_count()
+    assert read_catalog_frame(spark, cat, ["campaign_id"]).count() == expected
+    # a bare folder in the catalog's layout, without catalog.json: every file counts
+    (cat / "catalog.json").unlink()
+    extra = pq.read_metadata(part).num_rows
+    assert read_catalog_frame(spark, cat, ["campaign_id"]).count() == expected + extra
