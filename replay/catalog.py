@@ -75,19 +75,28 @@ class Catalog:
                              "`replay ingest SRC --into CATALOG`")
         self.meta = meta
         self._auction_files, self._rejected_files = committed_files(self.path, meta)
+        # The campaign table is small (one row per campaign): held in memory, so budgets
+        # stay those of the snapshot too.
+        path = self.path / CAMPAIGNS_FILE
+        data = path.read_bytes() if path.is_file() else None
+        self._campaign_table: pa.Table | None = None if data is None else \
+            pq.read_table(pa.BufferReader(data))
+        self._campaign_sha = None if data is None else hashlib.sha256(data).digest()
         self._local = threading.local()
         self._cache: dict[str, object] = {}
 
-    # -- pickling: the path and the snapshot (metadata, file lists) cross processes, so
-    # every worker reads the same files as the parent even if an ingest commits meanwhile
+    # -- pickling: the path and the snapshot (metadata, file lists, campaign table) cross
+    # processes, so every worker reads what the parent read even if an ingest commits
     def __getstate__(self) -> dict:
         return {"path": str(self.path), "meta": self.meta,
-                "files": (self._auction_files, self._rejected_files)}
+                "files": (self._auction_files, self._rejected_files),
+                "campaign_table": (self._campaign_table, self._campaign_sha)}
 
     def __setstate__(self, state: dict) -> None:
         self.path = Path(state["path"])
         self.meta = state["meta"]
         self._auction_files, self._rejected_files = state["files"]
+        self._campaign_table, self._campaign_sha = state["campaign_table"]
         self._local = threading.local()
         self._cache = {}
 
@@ -117,10 +126,9 @@ class Catalog:
                              for c in AUCTION_COLUMNS)
             con.execute(f"CREATE OR REPLACE VIEW auctions AS SELECT {cols}, "
                         f"CAST(NULL AS DATE) AS {PARTITION_COLUMN} WHERE false")
-        campaigns = self.path / CAMPAIGNS_FILE
-        if campaigns.is_file():
-            con.execute("CREATE OR REPLACE VIEW campaigns AS SELECT * FROM "
-                        f"read_parquet({_lit(str(campaigns))})")
+        if self._campaign_table is not None:
+            con.register("__campaign_table", self._campaign_table)
+            con.execute("CREATE OR REPLACE VIEW campaigns AS SELECT * FROM __campaign_table")
         else:
             cols = ", ".join(f"CAST(NULL AS {_duck_type(f.type)}) AS \"{f.name}\""
                              for f in CAMPAIGN_SCHEMA)
@@ -219,10 +227,9 @@ class Catalog:
 
     def campaigns(self) -> dict[str, CampaignSpec]:
         """The campaign table: campaign_id -> :class:`CampaignSpec` (budget in currency)."""
-        path = self.path / CAMPAIGNS_FILE
-        if not path.is_file():
+        table = self._campaign_table
+        if table is None:
             return {}
-        table = pq.read_table(path)
         out: dict[str, CampaignSpec] = {}
         cols = {n: table.column(n) for n in table.column_names}
         start = cols["start"].cast(pa.int64()).to_pylist()
@@ -252,13 +259,12 @@ class Catalog:
         """Stable hash of the catalog's contents: data file names and sizes, the recorded
         source hashes and the campaign table bytes."""
         h = hashlib.sha256()
-        for rel in sorted(self._auction_files + self._rejected_files):
+        for rel in [*self._auction_files, *self._rejected_files]:  # each sorted
             h.update(f"{rel}:{(self.path / rel).stat().st_size}\n".encode())
         for s in sorted(x["sha256"] for x in self.meta.get("sources", [])):
             h.update(s.encode())
-        campaigns = self.path / CAMPAIGNS_FILE
-        if campaigns.is_file():
-            h.update(hashlib.sha256(campaigns.read_bytes()).digest())
+        if self._campaign_sha is not None:  # the bytes of the table as read
+            h.update(self._campaign_sha)
         return h.hexdigest()[:16]
 
     # -- kernel inputs

@@ -320,3 +320,47 @@ def test_a_catalog_reads_only_committed_ingests_and_workers_share_its_snapshot(
     assert worker_copy.row_count() == 250  # the parent's snapshot
     assert worker_copy.campaign_row_counts() == cat.campaign_row_counts()
     assert Catalog(tmp_path / "cat").row_count() == 400
+
+
+def test_fingerprint_formula_is_unchanged(tmp_path: Path) -> None:
+    # Runs record the catalog fingerprint and refuse to resume or compare across different
+    # ones, so its formula must not move: sha256 over "path:size" of the data files
+    # (auctions, then rejected, each sorted), the sources' sha256s (sorted) and the
+    # campaign table's sha256, first 16 hex digits.
+    import hashlib
+
+    pq.write_table(_table(n=300, seed=8), tmp_path / "log.parquet")
+    (tmp_path / "bad.csv").write_text(
+        "ts,campaign_id,placement,pricing,value,min_win_price,request_id,charge_prob\n"
+        "2026-03-02T10:00:00Z,k1,feed,second_price,-1,0.002,z1,1\n"  # rejected
+        "2026-03-02T11:00:00Z,k1,feed,second_price,0.01,0.002,z2,1\n")
+    (tmp_path / "campaigns.csv").write_text("campaign_id,budget\nk1,1\nk2,2\nk3,3\n")
+    ingest([tmp_path / "log.parquet"], tmp_path / "cat", campaigns=tmp_path / "campaigns.csv")
+    ingest([tmp_path / "bad.csv"], tmp_path / "cat")
+    cat = Catalog(tmp_path / "cat")
+    assert list((cat.path / "_rejected").glob("*.parquet"))  # both folders take part
+    h = hashlib.sha256()
+    for sub in ("auctions", "_rejected"):
+        for f in sorted((cat.path / sub).rglob("*.parquet")):
+            h.update(f"{f.relative_to(cat.path).as_posix()}:{f.stat().st_size}\n".encode())
+    for s in sorted(x["sha256"] for x in cat.meta["sources"]):
+        h.update(s.encode())
+    h.update(hashlib.sha256((cat.path / "campaigns.parquet").read_bytes()).digest())
+    assert cat.fingerprint() == h.hexdigest()[:16]
+
+
+def test_the_campaign_table_is_part_of_the_snapshot(tmp_path: Path) -> None:
+    import pickle
+
+    table = _table(n=200, seed=6)
+    pq.write_table(table, tmp_path / "log.parquet")
+    (tmp_path / "c1.csv").write_text("campaign_id,budget\nk1,1\nk2,2\nk3,3\n")
+    (tmp_path / "c2.csv").write_text("campaign_id,budget\nk1,10\n")
+    ingest([tmp_path / "log.parquet"], tmp_path / "cat", campaigns=tmp_path / "c1.csv")
+    cat = Catalog(tmp_path / "cat")
+    sent = pickle.dumps(cat)
+    ingest([], tmp_path / "cat", campaigns=tmp_path / "c2.csv")  # replaces k1's row
+    for c in (cat, pickle.loads(sent)):
+        assert c.campaigns()["k1"].budget == 1.0
+        assert c.sql("SELECT budget FROM campaigns WHERE campaign_id = 'k1'")["budget"][0] == 1
+    assert Catalog(tmp_path / "cat").campaigns()["k1"].budget == 10.0
