@@ -705,6 +705,7 @@ def ingest(sources: Sequence[str | Path], into: str | Path,
         tmp = catalog / f"_tmp-{ingest_id}"
         try:
             _check_is_catalog(catalog, meta)
+            _clear_unfinished(catalog, meta, report)
             for path, fmt, names, sha in files:
                 if sha in known or sha in seen_hash:
                     report.skipped.append(str(path))
@@ -731,6 +732,31 @@ def ingest(sources: Sequence[str | Path], into: str | Path,
 
 #: The lock file of a catalog (``catalog_write_lock``); it holds the writer's pid and start.
 LOCK_FILE = ".lock"
+
+
+def _clear_unfinished(catalog: Path, meta: dict | None, report: IngestReport) -> None:
+    """Delete what an ingest that died (killed, power cut) left in the catalog: its staging
+    folder and any data files it had moved in before recording them in ``catalog.json``.
+    Run under the write lock, so no live ingest owns them; readers never saw the files
+    (``committed_files``). Their sources were not recorded, so ingesting those sources
+    again adds the rows."""
+    if meta is None:
+        return
+    for entry in catalog.glob("_tmp-*"):
+        shutil.rmtree(entry, ignore_errors=True)
+    committed = {x["ingest_id"] for x in meta.get("ingests", [])}
+    orphans = [f for f in [*(catalog / AUCTIONS_DIR).glob("*/*.parquet"),
+                           *(catalog / REJECTED_DIR).glob("*.parquet")]
+               if ingest_id_of(f.name) not in committed | {None}]
+    if not orphans:
+        return
+    ids = sorted({str(ingest_id_of(f.name)) for f in orphans})
+    for f in orphans:
+        f.unlink(missing_ok=True)
+    report.warnings.append(
+        f"removed {len(orphans)} data file(s) of {len(ids)} ingest(s) that did not finish "
+        f"({_short_list(ids)}); their sources were not recorded: ingest them again to add "
+        "those rows")
 
 
 def _check_is_catalog(catalog: Path, meta: dict | None) -> None:

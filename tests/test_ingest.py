@@ -423,3 +423,26 @@ def test_concurrent_ingests_into_one_new_catalog_keep_every_row(tmp_path: Path) 
         ["a.parquet", "b.parquet", "c.parquet"]
     assert sum(meta["campaign_rows"].values()) == sum(sizes.values())
     assert Catalog(cat).row_count() == sum(sizes.values())
+
+
+def test_what_a_dead_ingest_left_is_cleared_by_the_next(tmp_path: Path) -> None:
+    # An ingest killed between moving its files in and writing catalog.json leaves files no
+    # reader sees (Catalog reads committed ingests only); the next ingest removes them and
+    # says so, and the rows come back when their source is ingested again.
+    import shutil
+
+    cat = tmp_path / "cat"
+    n_a = _log_with_ids(tmp_path / "a.parquet", 1, "a")
+    n_b = _log_with_ids(tmp_path / "b.parquet", 2, "b")
+    ingest([tmp_path / "a.parquet"], cat)
+    part = next((cat / "auctions").glob("*/*.parquet"))
+    dead = part.with_name("part-20990101T000000-deadbeef-0.parquet")
+    shutil.copy(part, dead)
+    (cat / "_tmp-20990101T000000-deadbeef" / "staged").mkdir(parents=True)
+    assert Catalog(cat).row_count() == n_a
+    report = ingest([tmp_path / "b.parquet"], cat)
+    assert not dead.exists() and not list(cat.glob("_tmp-*"))
+    assert any("1 data file(s) of 1 ingest(s) that did not finish" in w
+               for w in report.warnings), report.warnings
+    assert Catalog(cat).row_count() == n_a + n_b
+    assert part.exists()  # committed files stay
