@@ -30,6 +30,7 @@ from replay.ingest import (
     committed_files,
     connect_duckdb,
     read_catalog_json,
+    sql_file_list,
 )
 from replay.schema import (
     AUCTION_COLUMNS,
@@ -119,7 +120,7 @@ class Catalog:
         if self._auction_files:
             con.execute(
                 "CREATE OR REPLACE VIEW auctions AS SELECT * FROM read_parquet("
-                f"{_file_list(self.path, self._auction_files)}, hive_partitioning = true, "
+                f"{sql_file_list(self.path, self._auction_files)}, hive_partitioning = true, "
                 f"hive_types = {{'{PARTITION_COLUMN}': DATE}})")
         else:
             cols = ", ".join(f"CAST(NULL AS {_duck_type(c.type)}) AS {c.name}"
@@ -135,7 +136,7 @@ class Catalog:
             con.execute(f"CREATE OR REPLACE VIEW campaigns AS SELECT {cols} WHERE false")
         if self._rejected_files:
             con.execute("CREATE OR REPLACE VIEW rejected AS SELECT * FROM read_parquet("
-                        f"{_file_list(self.path, self._rejected_files)}, "
+                        f"{sql_file_list(self.path, self._rejected_files)}, "
                         "union_by_name = true)")
         else:
             con.execute("CREATE OR REPLACE VIEW rejected AS SELECT "
@@ -378,11 +379,6 @@ class Catalog:
         if con is not None:
             con.close()
             self._local.con = None
-
-
-def _file_list(path: Path, files: Sequence[str]) -> str:
-    """A DuckDB list literal of the files (relative to ``path``)."""
-    return "[" + ", ".join(_lit(str(path / f)) for f in files) + "]"
 
 
 def _duck_type(t: pa.DataType) -> str:

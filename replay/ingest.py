@@ -588,22 +588,39 @@ def ingest_id_of(name: str) -> str | None:
     return None
 
 
+def recorded_ingests(meta: dict) -> set[str]:
+    """The ingest ids recorded in ``catalog.json`` (``meta``)."""
+    return {x["ingest_id"] for x in meta.get("ingests", [])}
+
+
+def is_recorded(file_name: str, recorded: set[str]) -> bool:
+    """Whether a catalog data file belongs to a recorded ingest (``recorded_ingests``), or
+    has a name ingest does not write, which always counts. Ingest moves its files in before
+    it writes ``catalog.json``, so the files of an ingest still committing, or that died
+    committing, are on disk but not recorded."""
+    ingest_id = ingest_id_of(file_name)
+    return ingest_id is None or ingest_id in recorded
+
+
+def _data_files(path: Path) -> list[list[Path]]:
+    """The catalog's auction files and its rejected-row files, each sorted."""
+    return [sorted((path / AUCTIONS_DIR).glob("*/*.parquet")),
+            sorted((path / REJECTED_DIR).glob("*.parquet"))]
+
+
 def committed_files(path: Path, meta: dict) -> tuple[list[str], list[str]]:
-    """The catalog's data files (paths relative to it, sorted) of the ingests recorded in
-    ``meta``. Ingest moves its files in before it writes ``catalog.json``, so files of an
-    ingest still committing are on disk but not yet recorded: leaving them out keeps a
-    reader from seeing half of an ingest, with no lock."""
-    committed = {x["ingest_id"] for x in meta.get("ingests", [])}
-
-    def keep(f: Path) -> bool:
-        ingest_id = ingest_id_of(f.name)
-        return ingest_id is None or ingest_id in committed
-
-    auctions = sorted(f.relative_to(path).as_posix()
-                      for f in (path / AUCTIONS_DIR).glob("*/*.parquet") if keep(f))
-    rejected = sorted(f.relative_to(path).as_posix()
-                      for f in (path / REJECTED_DIR).glob("*.parquet") if keep(f))
+    """The catalog's auction and rejected-row files (paths relative to it, sorted) of the
+    recorded ingests (``is_recorded``): a reader that keeps to them never sees half of an
+    ingest, with no lock."""
+    recorded = recorded_ingests(meta)
+    auctions, rejected = ([f.relative_to(path).as_posix() for f in files
+                           if is_recorded(f.name, recorded)] for files in _data_files(path))
     return auctions, rejected
+
+
+def sql_file_list(path: Path, files: Sequence[str]) -> str:
+    """A DuckDB list literal of the files (relative to ``path``)."""
+    return "[" + ", ".join(_lit(str(path / f)) for f in files) + "]"
 
 
 def _write_json_atomic(path: Path, data: dict) -> None:
@@ -693,8 +710,7 @@ def ingest(sources: Sequence[str | Path], into: str | Path,
         report.campaign_table_rows = table.num_rows
 
     created = not catalog.exists()
-    catalog.mkdir(parents=True, exist_ok=True)
-    with catalog_write_lock(catalog, on_wait):
+    with catalog_write_lock(catalog, on_wait):  # creates the folder
         # Read again under the lock: another ingest may have committed while we hashed.
         meta = read_catalog_json(catalog)
         known = {s["sha256"]: s for s in (meta or {}).get("sources", [])}
@@ -744,10 +760,9 @@ def _clear_unfinished(catalog: Path, meta: dict | None, report: IngestReport) ->
         return
     for entry in catalog.glob("_tmp-*"):
         shutil.rmtree(entry, ignore_errors=True)
-    committed = {x["ingest_id"] for x in meta.get("ingests", [])}
-    orphans = [f for f in [*(catalog / AUCTIONS_DIR).glob("*/*.parquet"),
-                           *(catalog / REJECTED_DIR).glob("*.parquet")]
-               if ingest_id_of(f.name) not in committed | {None}]
+    recorded = recorded_ingests(meta)
+    orphans = [f for files in _data_files(catalog) for f in files
+               if not is_recorded(f.name, recorded)]
     if not orphans:
         return
     ids = sorted({str(ingest_id_of(f.name)) for f in orphans})
@@ -1246,7 +1261,7 @@ def _run_sql(con: duckdb.DuckDBPyConnection, groups: list[_Group], scan_of: dict
                 " SEMI JOIN dupkeys USING (__h)"
                 " JOIN __files USING (__file)) WHERE rn > 1")
         if existing:
-            old_files = "[" + ", ".join(_lit(str(catalog / f)) for f in existing) + "]"
+            old_files = sql_file_list(catalog, existing)
             parts.append(
                 "SELECT __file, file_row_number FROM (SELECT * FROM v WHERE ok "
                 "AND request_id IS NOT NULL) vv SEMI JOIN (SELECT campaign_id, request_id FROM "

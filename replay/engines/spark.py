@@ -285,15 +285,14 @@ def read_catalog_frame(spark: Any, catalog_path: str | Path, columns: Sequence[s
     if "://" not in root and not Path(auctions).is_dir():
         raise InputError(f"{root}: not a catalog (no auctions/ folder); run `replay ingest`")
     df = spark.read.option("basePath", auctions).parquet(auctions)
-    committed = _committed_ingests(spark, root)
-    if committed is not None:
-        # As Catalog does: only files of ingests recorded in catalog.json (one still
-        # committing, or crashed while committing, has files on disk but no record).
-        from replay.ingest import ingest_id_of
+    meta = _catalog_meta(spark, root)
+    if meta is not None:
+        # As Catalog does: only files of ingests recorded in catalog.json.
+        from replay.ingest import is_recorded, recorded_ingests
 
+        recorded = recorded_ingests(meta)
         files = df.inputFiles()
-        keep = [f for f in files
-                if ingest_id_of(f.rsplit("/", 1)[-1]) in committed | {None}]
+        keep = [f for f in files if is_recorded(f.rsplit("/", 1)[-1], recorded)]
         if len(keep) < len(files):
             df = (spark.read.option("basePath", auctions).parquet(*keep) if keep
                   else df.limit(0))
@@ -316,22 +315,20 @@ def read_catalog_frame(spark: Any, catalog_path: str | Path, columns: Sequence[s
     return df.select(*wanted)
 
 
-def _committed_ingests(spark: Any, root: str) -> set[str] | None:
-    """Ingest ids recorded in the catalog's ``catalog.json``; None without one (a bare
-    folder in the catalog's layout: every file counts)."""
+def _catalog_meta(spark: Any, root: str) -> dict | None:
+    """The catalog's ``catalog.json``; None without one (a bare folder in the catalog's
+    layout: every file counts)."""
     import json
 
     from replay.ingest import CATALOG_JSON, read_catalog_json
 
     if "://" not in root:
-        meta = read_catalog_json(Path(root))
-    else:
-        try:
-            rows = spark.read.text(f"{root}/{CATALOG_JSON}", wholetext=True).collect()
-        except Exception:  # noqa: BLE001 - Spark raises its own types for a missing path
-            return None
-        meta = json.loads(rows[0][0]) if rows else None
-    return None if meta is None else {x["ingest_id"] for x in meta.get("ingests", [])}
+        return read_catalog_json(Path(root))
+    try:
+        rows = spark.read.text(f"{root}/{CATALOG_JSON}", wholetext=True).collect()
+    except Exception:  # noqa: BLE001 - Spark raises its own types for a missing path
+        return None
+    return json.loads(rows[0][0]) if rows else None
 
 
 def catalog_placements(spark: Any, catalog_path: str | Path) -> list[tuple[str, str]]:
