@@ -446,3 +446,101 @@ def test_feedback_tuple_puts_each_field_at_its_index() -> None:
     assert len(out) == rl.FB_SIZE
     for name, index in names.items():
         assert out[index] == values[name], name
+
+
+def _wins_at(v: float, nd: float, lam: float) -> bool:
+    """The loop's win test with mu = 0, in plain Python floats (IEEE-754 doubles)."""
+    return v * (1.0 / max(lam, rl.LAMBDA_FLOOR)) >= nd
+
+
+@settings(max_examples=200, deadline=None)
+@given(value=st.floats(0.0, 1e6, allow_subnormal=True),
+       need=st.one_of(st.floats(0.0, 1e6, allow_subnormal=True), st.just(math.inf)),
+       lam=st.one_of(st.floats(-1.0, 1e300), st.just(math.inf), st.just(0.0)))
+@example(value=1.0, need=0.0, lam=math.inf)
+@example(value=0.0, need=0.0, lam=1e300)
+@example(value=1e-300, need=1e-300, lam=1.0)
+@example(value=3.0, need=5e-324, lam=1.7976931348623157e308)
+@example(value=5e-324, need=5e-324, lam=1.5)  # subnormal: theta ~2**52 ulps from v/need
+def test_win_lambdas_decide_exactly_as_the_bid_compare(value: float, need: float,
+                                                       lam: float) -> None:
+    """``lam <= theta`` is the loop's win test ``value * (1 / max(lam, floor)) >= need``
+    bit for bit, at any lambda and at the floats on either side of theta (correctly
+    rounded division and product are monotone: IEEE 754-2008, section 4.3)."""
+    theta = float(rl.win_lambdas(np.array([value]), np.array([need]))[0])
+    probes = [lam, theta, math.nextafter(theta, math.inf), math.nextafter(theta, -math.inf),
+              rl.LAMBDA_FLOOR, 0.0, math.inf]
+    for x in probes:
+        if math.isfinite(x) or x == math.inf:
+            assert (x <= theta) == _wins_at(value, need, x), (value, need, theta, x)
+
+
+def test_win_lambdas_on_many_rows_at_theta_and_its_neighbours() -> None:
+    """The same equivalence over 200,000 rows of spread values and needs (numpy's float64
+    division and product are IEEE-754 correctly rounded, as the loop's)."""
+    rng = np.random.default_rng(11)
+    n = 200_000
+    value = rng.lognormal(0.0, 3.0, n)
+    need = rng.lognormal(-1.0, 3.0, n)
+    need[::97] = 0.0
+    need[::89] = np.inf
+    value[::83] = 0.0
+    theta = rl.win_lambdas(value, need)
+
+    def wins(lam):
+        return value * (1.0 / np.maximum(lam, rl.LAMBDA_FLOOR)) >= need
+
+    finite = np.isfinite(theta)
+    for lam in (theta, np.nextafter(theta, np.inf), np.nextafter(theta, -np.inf),
+                rng.lognormal(0.0, 3.0, n)):
+        lam = np.where(np.isfinite(lam), lam, 1.0)
+        assert np.array_equal(lam <= theta, wins(lam))
+    assert finite.mean() > 0.9  # most rows have a finite boundary
+
+
+def test_curve_shares_equal_curve_from_row_by_row() -> None:
+    """The per-request stretch's block evaluation of the target curve returns what
+    ``_curve_from`` returns row by row, bit for bit, across segments, flat runs and rows
+    before and after the curve."""
+    rng = np.random.default_rng(4)
+    knots = np.sort(rng.uniform(1e6, 9e6, 40))
+    knots[10] = knots[9]  # a zero-length segment
+    curve_t = knots
+    curve_f = np.sort(rng.uniform(0.0, 1.0, 40))
+    curve_f[20:23] = curve_f[19]  # a flat stretch
+    knots[5] = float(int(knots[5]))
+    ts = rng.integers(0, 10_000_000, 5000)
+    ts[100:140] = int(knots[5])  # rows exactly on a knot
+    ts = np.sort(ts).astype(np.int64)
+    for start, count, pos in ((0, 5000, 0), (1, 1024, 0), (3000, 2000, 0), (4999, 1, 0)):
+        out = np.empty(count)
+        out_pos = np.empty(count, np.int64)
+        p_pos = int(rl._curve_shares(ts, start, count, curve_t, curve_f, pos, out, out_pos))
+        want, want_pos, q = np.empty(count), np.empty(count, np.int64), pos
+        for u in range(count):
+            want[u], q = rl._curve_from(float(ts[start + u]), curve_t, curve_f, q)
+            want_pos[u] = q
+        assert np.array_equal(out, want)
+        assert np.array_equal(out_pos, want_pos) and p_pos == q
+
+
+@pytest.mark.parametrize("target", ["uniform", "traffic"])
+def test_long_per_request_stretch_with_a_cap_matches_generic_path(target: str) -> None:
+    """Per-request stretches longer than the stretch's chunk (rl.WIN_CHUNK rows), a target
+    curve with many knots and a cost-per-result cap whose multiplier moves between 0 and
+    positive values (so wins switch between ``lam <= theta`` and ``w >= need``):
+    bit-identical to the generic path, which runs every row through the interval body."""
+    data = contract_data(n=8000, seed=7)
+    train, rows = _split(data)
+    spec = CampaignSpec("c", budget=0.3 * float(rows.min_win_price.sum()),
+                        max_cost_per_result=0.1)
+
+    def run(path: str, series_max: int):
+        return replay_campaign(rows, train, spec, make_rule("dual-mirror", {"target": target}),
+                               Schedule(every_n=1), "expected", 3, path=path,
+                               series_max=series_max)
+
+    mu = run("fused", 5000).series["mu"].to_numpy()
+    assert np.any(mu == 0) and np.any(mu > 0)
+    assert -(-len(rows) // 2) > rl.WIN_CHUNK
+    _assert_same_replay(run("fused", 2), run("generic", 2))

@@ -292,6 +292,11 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
         fast = bool(fast)
     else:  # the per-row shading loop reads neither array
         fast, need, above_w = False, np.zeros(0), np.zeros(0)
+    # Per-request schedules decide wins by comparing lambda with a per-row threshold (the
+    # per-request stretch of the loop; same decisions as ``w >= need``).
+    theta = (rl.win_lambdas(value, need) if fast and schedule.every_n == 1
+             and not rule.fixed_bid and not rule.uses_index
+             and bool(np.all(value >= 0.0)) and bool(np.all(need >= 0.0)) else np.zeros(0))
     auctions_per_placement = (np.bincount(plc, minlength=len(placements))[:len(placements)]
                               if len(rows) else np.zeros(len(placements), np.int64))
 
@@ -335,7 +340,7 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
         use_fused = path == "fused" or (path == "auto" and _fused_ok(rule))
         fb = np.zeros(rl.FB_SIZE)
         tail = (capf, bool(rule.fixed_bid), pbid, shade_on, *shade_args, UNIT, MASK, fast, need,
-                above_w, acc, won, pl_acc, series, group, fb)
+                above_w, theta, acc, won, pl_acc, series, group, fb)
         if use_fused:
             if not hasattr(type(rule).numba_update, "compile"):
                 raise UsageError(f"rule {rule.name!r}: numba_update must be an @njit function "

@@ -57,7 +57,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from replay.kernels.bits import f64_bits, pick
+from replay.kernels.bits import bits_f64, f64_bits, pick
 from replay.kernels.ftl_index import ftl_insert, ftl_lambda_for_spend
 from replay.kernels.landscape import shade
 
@@ -328,6 +328,92 @@ def win_thresholds(price, placement, first_price, shade_on, offsets, knots_w, kn
 
 
 @njit(cache=True, nogil=True, inline="always")
+def _wins_at(v, nd, lam):
+    """The loop's win test with ``mu == 0``: ``v * (1 / max(lam, floor)) >= nd``."""
+    return v * (1.0 / max(lam, LAMBDA_FLOOR)) >= nd
+
+
+_TOP = np.finfo(np.float64).max
+_NEAR = 2  # win_lambdas' first pass looks this many floats either side of value / need
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def _win_lambda_search(v, nd):
+    """``win_lambdas`` of one row by search over bit patterns (they order like positive
+    floats): from ``v / nd``, steps doubling until the test changes, then bisection."""
+    if not _wins_at(v, nd, LAMBDA_FLOOR):
+        return -np.inf
+    if _wins_at(v, nd, np.inf):
+        return np.inf
+    if _wins_at(v, nd, _TOP):
+        return _TOP
+    # The test holds at the floor and fails at the top: the last bits that win.
+    t = min(max(v / nd, LAMBDA_FLOOR), _TOP) if nd > 0.0 else _TOP
+    lo = f64_bits(LAMBDA_FLOOR)
+    hi = f64_bits(_TOP)
+    step = 1
+    if _wins_at(v, nd, t):
+        lo = f64_bits(t)
+        while lo + step < hi:
+            if not _wins_at(v, nd, bits_f64(lo + step)):
+                hi = lo + step
+                break
+            lo += step
+            step *= 2
+    else:
+        hi = f64_bits(t)
+        while hi - step > lo:
+            if _wins_at(v, nd, bits_f64(hi - step)):
+                lo = hi - step
+                break
+            hi -= step
+            step *= 2
+    while hi - lo > 1:
+        mid = lo + (hi - lo) // 2
+        if _wins_at(v, nd, bits_f64(mid)):
+            lo = mid
+        else:
+            hi = mid
+    return bits_f64(lo)
+
+
+@njit(cache=True, nogil=True, error_model="numpy")  # v / 0 is inf, not an exception
+def win_lambdas(value, need):
+    """Per row, the largest multiplier lambda (results per currency) at which the loop wins
+    it while the cap multiplier is zero: row r is won iff ``lambda <= theta[r]``, for every
+    float lambda, bit for bit the same decision as ``value * scale >= need``. Needs
+    ``value >= 0`` and ``need >= 0``.
+
+    The test ``value * (1 / max(lambda, floor)) >= need`` only weakens as lambda grows
+    (correctly rounded division and product are monotone), so it holds on ``lambda <= theta``
+    and nowhere else. ``theta`` lies within two floats of ``value / need`` in all but rare
+    rows (a first pass without branches checks the test at those five floats); the rest, and
+    the ratios outside [floor, max float], go through ``_win_lambda_search``. ``-inf``:
+    never won; ``+inf``: won at any lambda. The per-request stretch compares lambda with
+    ``theta[r]`` instead of dividing first: the decision then waits on one compare, not on
+    a division.
+    """
+    n = value.shape[0]
+    theta = np.empty(n, np.float64)
+    for r in range(n):
+        v = value[r]
+        nd = need[r]
+        t = min(max(v / nd, LAMBDA_FLOOR), _TOP)
+        bits = f64_bits(t) - _NEAR
+        wins = 0
+        for d in range(2 * _NEAR + 1):  # the test at the 2 * _NEAR + 1 floats around t
+            wins += _wins_at(v, nd, bits_f64(bits + d))
+        # The test changes inside the window iff it holds at its first float and fails at
+        # its last; theta is then the last float that wins.
+        inside = (wins > 0) & (wins <= 2 * _NEAR) & (t > LAMBDA_FLOOR) & (t < NO_BID_LAMBDA)
+        theta[r] = pick(-np.int64(inside), bits_f64(bits + wins - 1), np.nan)
+    for r in range(n):
+        if np.isnan(theta[r]):
+            theta[r] = _win_lambda_search(value[r], need[r])
+    return theta
+
+
+@njit(cache=True, nogil=True, inline="always")
 def _curve_from(t, curve_t, curve_f, pos):
     """``curve_at(t)`` (bit for bit) searching forward from segment ``pos`` (times only
     grow across intervals); returns ``(share, segment)``."""
@@ -342,6 +428,53 @@ def _curve_from(t, curve_t, curve_f, pos):
     x0 = curve_t[lo]
     x1 = curve_t[lo + 1]
     return curve_f[lo] + (curve_f[lo + 1] - curve_f[lo]) * ((t - x0) / (x1 - x0)), lo
+
+
+@njit(cache=True, nogil=True)
+def _curve_shares(ts, start, count, curve_t, curve_f, pos, out, out_pos):
+    """``out[u], out_pos[u] = _curve_from(float(ts[start + u]), ..., pos)`` for
+    ``u < count``, the positions carried from row to row, bit for bit; returns the last
+    position. The rows of one segment go through a loop without branches, which LLVM
+    vectorizes (about 5x faster than ``_curve_from`` row by row)."""
+    n_knots = curve_t.shape[0]
+    u = 0
+    while u < count:
+        t = float(ts[start + u])
+        if t <= curve_t[0]:
+            out[u] = curve_f[0]
+            out_pos[u] = pos
+            u += 1
+            continue
+        if t >= curve_t[n_knots - 1]:
+            out[u] = curve_f[n_knots - 1]
+            out_pos[u] = pos
+            u += 1
+            continue
+        while curve_t[pos + 1] <= t:
+            pos += 1
+        x0 = curve_t[pos]
+        x1 = curve_t[pos + 1]
+        f0 = curve_f[pos]
+        df = curve_f[pos + 1] - f0
+        dx = x1 - x0
+        # Times grow: the rows before the segment's end share its formula. Most chunks
+        # lie in one segment; else a binary search finds the first row at or after x1.
+        v = count
+        if not (float(ts[start + count - 1]) < x1):
+            lo = u  # float(ts[start + lo]) < x1 <= float(ts[start + v])
+            v = count - 1
+            while v - lo > 1:
+                mid = (lo + v) >> 1
+                if float(ts[start + mid]) < x1:
+                    lo = mid
+                else:
+                    v = mid
+        for q in range(u, v):
+            out[q] = f0 + df * ((float(ts[start + q]) - x0) / dx)
+        for q in range(u, v):
+            out_pos[q] = pos
+        u = v
+    return pos
 
 
 @njit(cache=True, nogil=True)
@@ -412,7 +545,7 @@ def replay_fused_loop(state, params, index, feed_index, ts, value, price, charge
                       flight_start, flight_end, curve_t, curve_f, budget, norm,
                       expected_auctions, cap, fixed_bid, pbid, shade_on, offsets, knots_w,
                       knots_b, linear, tab_fp, maxlog, grid, rec, gidx, unit, mask, fast, need,
-                      above_w, acc, won, pl_acc, series, group, fb, k_begin, k_end):
+                      above_w, theta, acc, won, pl_acc, series, group, fb, k_begin, k_end):
     """Replay intervals ``k_begin..k_end-1`` in one compiled loop, calling
     ``update(state, params, fb)`` at each boundary (``feedback_tuple(...)`` in the
     per-request stretch); the position (row, time) carries over in ``acc`` and the last
@@ -430,6 +563,9 @@ def replay_fused_loop(state, params, index, feed_index, ts, value, price, charge
     cand = np.empty(WIN_CHUNK, np.int64)  # pass 1's won rows of a chunk
     cand_fp = np.empty(WIN_CHUNK, np.int64)  # those of them to shade
     paid_buf = np.empty(WIN_CHUNK, np.float64)  # price paid per row of the chunk if won
+    f_buf = np.empty(WIN_CHUNK, np.float64)  # per-request stretch: target curve share
+    tgt_buf = np.empty(WIN_CHUNK, np.float64)  # and target spend per row, and
+    pos_buf = np.empty(WIN_CHUNK, np.int64)  # the curve segment after each row
     srow = k_begin // group  # series row and position in its bucket (no division per k)
     spos = k_begin - srow * group
     # The running totals live in locals and go back to ``acc`` when the call ends (the
@@ -460,6 +596,7 @@ def replay_fused_loop(state, params, index, feed_index, ts, value, price, charge
     # One row per update, the rule's own numba update, win thresholds: the per-request
     # stretch below runs such rows without the chunk machinery.
     stretch = every_n == 1 and fast and not feed_index
+    use_theta = theta.shape[0] == n and not fixed_bid
     k = k_begin
     while k < k_end:
         # ``ONE_ROW`` first: a constant of the build, so numba drops the block (its
@@ -473,85 +610,104 @@ def replay_fused_loop(state, params, index, feed_index, ts, value, price, charge
             # test compares it with the generic path, which never takes this branch.
             k_stop = min(k_end - 1, k + (group - 1 - spos), n - 1 - i + k)
             while k < k_stop:
-                r = _U(i)
-                lam = state[STATE_LAMBDA]
-                mu = state[STATE_MU]
-                scale = (1.0 + mu * cap) / (max(lam, LAMBDA_FLOOR) + mu)
-                p = _U(placement[r])
-                w = pbid[p] if fixed_bid else value[r] * scale
-                above = np.int64(w > above_w[p])
-                spend = 0.0
-                expected = 0.0
-                results = 0.0
-                wins = 0
-                min_cost = 0.0
-                if w >= need[r]:  # a jump: the CPU runs ahead of the win (see DEVELOPERS)
-                    c = price[r]
-                    paid = c
-                    if first_price[r]:
-                        b = w
-                        if not shade_on:
-                            pass
-                        elif grid[p, G_SLOW]:
-                            b = shade(w, np.int64(p), offsets, knots_w, knots_b, linear,
-                                      tab_fp)
-                            if b > w:
-                                b = w
-                        else:  # as in pass 2 below
-                            b, cell = grid_lookup(w, p, grid, rec, mask)
-                            if w > rec[cell, R_NEXT]:
-                                h = gidx[cell] + 2
-                                while h < grid[p, G_HI] and knots_w[h] < w:
-                                    h += 1
-                                b = knots_b[h - 1]
-                            b = pick(mask[np.int64(b < w)], b, w)
-                        paid = b
-                    if sampled:
-                        q = charge_prob[r]
-                        ch = (paid / q) * unit[np.int64(uniforms[r] < q)]
-                    else:
-                        ch = paid
-                    won[r] = True
-                    wins = 1
-                    results = value[r]
-                    cum_r += value[r]
-                    spend = ch
-                    cum += ch
-                    expected = paid
-                    cum_e += paid
-                    min_cost = c
-                    pl_acc[p, 0] += 1.0
-                    pl_acc[p, 1] += value[r]
-                    pl_acc[p, 2] += ch
-                    pl_acc[p, 3] += paid
-                    last_ch = ch
-                    if cum >= budget and ex_ts < 0:
-                        ex_ts = float(ts[r])
-                t_end = float(ts[i + 1])
-                f1, cpos = _curve_from(t_end, curve_t, curve_f, cpos)
-                target = budget * (f1 - f_prev)
-                tot_wins += wins
-                tot_bids += 1
-                tot_above += above
-                tot_min_cost += min_cost
-                rows_seen += 1
-                s_auctions += 1
-                s_wins += wins
-                s_results += results
-                s_spend += spend
-                s_expected += expected
-                s_target += target
-                spos += 1
-                fbt = feedback_tuple(k, 1, wins, results, spend, expected, target, cum, cum_e,
-                                     budget * f1, cum_r, budget - cum, t_prev, t_end, budget,
-                                     1.0 - f1, rows_seen,
-                                     norm if norm > 0.0 else max(target, 1e-300),
-                                     1.0 if cum >= budget else 0.0, expected_auctions)
-                f_prev = f1
-                i += 1
-                t_prev = t_end
-                update_inline(state, params, fbt)
-                k += 1
+                # Pass 0: the target shares of a chunk of rows, before the rows. They do
+                # not depend on the bids, and after a mispredicted win the next update
+                # then waits on a load, not on the curve's division.
+                k_chunk = min(k_stop, k + WIN_CHUNK)
+                n_chunk = k_chunk - k
+                cpos = _curve_shares(ts, i + 1, n_chunk, curve_t, curve_f, cpos, f_buf,
+                                     pos_buf)
+                tgt_buf[0] = budget * (f_buf[0] - f_prev)
+                for u in range(1, n_chunk):
+                    tgt_buf[u] = budget * (f_buf[u] - f_buf[u - 1])
+                u = 0
+                while k < k_chunk:
+                    r = _U(i)
+                    lam = state[STATE_LAMBDA]
+                    mu = state[STATE_MU]
+                    scale = (1.0 + mu * cap) / (max(lam, LAMBDA_FLOOR) + mu)
+                    p = _U(placement[r])
+                    w = pbid[p] if fixed_bid else value[r] * scale
+                    above = np.int64(w > above_w[p])
+                    spend = 0.0
+                    expected = 0.0
+                    results = 0.0
+                    wins = 0
+                    min_cost = 0.0
+                    # A jump: the CPU runs ahead of the win (see DEVELOPERS). With mu = 0 the
+                    # win is ``lam <= theta[r]`` (``win_lambdas``): the same decision, known
+                    # one compare after lambda instead of after a division.
+                    if (lam <= theta[r]) if use_theta and mu == 0.0 else (w >= need[r]):
+                        c = price[r]
+                        paid = c
+                        if first_price[r]:
+                            b = w
+                            if not shade_on:
+                                pass
+                            elif grid[p, G_SLOW]:
+                                b = shade(w, np.int64(p), offsets, knots_w, knots_b, linear,
+                                          tab_fp)
+                                if b > w:
+                                    b = w
+                            else:  # as in pass 2 below
+                                b, cell = grid_lookup(w, p, grid, rec, mask)
+                                if w > rec[cell, R_NEXT]:
+                                    h = gidx[cell] + 2
+                                    while h < grid[p, G_HI] and knots_w[h] < w:
+                                        h += 1
+                                    b = knots_b[h - 1]
+                                b = pick(mask[np.int64(b < w)], b, w)
+                            paid = b
+                        if sampled:
+                            q = charge_prob[r]
+                            ch = (paid / q) * unit[np.int64(uniforms[r] < q)]
+                        else:
+                            ch = paid
+                        won[r] = True
+                        wins = 1
+                        results = value[r]
+                        cum_r += value[r]
+                        spend = ch
+                        cum += ch
+                        expected = paid
+                        cum_e += paid
+                        min_cost = c
+                        pl_acc[p, 0] += 1.0
+                        pl_acc[p, 1] += value[r]
+                        pl_acc[p, 2] += ch
+                        pl_acc[p, 3] += paid
+                        last_ch = ch
+                        if cum >= budget and ex_ts < 0:
+                            ex_ts = float(ts[r])
+                    t_end = float(ts[i + 1])
+                    f1 = f_buf[u]
+                    target = tgt_buf[u]
+                    tot_wins += wins
+                    tot_bids += 1
+                    tot_above += above
+                    tot_min_cost += min_cost
+                    rows_seen += 1
+                    s_auctions += 1
+                    s_wins += wins
+                    s_results += results
+                    s_spend += spend
+                    s_expected += expected
+                    s_target += target
+                    spos += 1
+                    fbt = feedback_tuple(k, 1, wins, results, spend, expected, target, cum,
+                                         cum_e, budget * f1, cum_r, budget - cum, t_prev, t_end,
+                                         budget, 1.0 - f1, rows_seen,
+                                         norm if norm > 0.0 else max(target, 1e-300),
+                                         1.0 if cum >= budget else 0.0, expected_auctions)
+                    f_prev = f1
+                    i += 1
+                    t_prev = t_end
+                    update_inline(state, params, fbt)
+                    k += 1
+                    u += 1
+                    if cum >= budget:
+                        break
+                cpos = pos_buf[u - 1]  # pass 0 may have run past a row that spent the budget
                 if cum >= budget:
                     break
             continue
