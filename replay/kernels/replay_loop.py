@@ -33,6 +33,15 @@ the body does for a one-row interval, bit for bit (tests compare it with the gen
 which never enters it). It is its own build because its code, even unused, slowed the
 batch passes by about 8 %.
 
+Per request, each row's bid waits on the update after the row before, and half the wins
+are mispredicted, so the stretch shortens what a row waits on after a misprediction:
+* with the cap multiplier at 0 a row is won iff ``lambda <= theta[r]`` (``win_lambdas``,
+  once per campaign: the exact boundary of ``value * (1 / max(lambda, floor)) >= need``),
+  one compare after lambda instead of a division and a product;
+* the target shares of up to ``WIN_CHUNK`` rows are computed before those rows
+  (``_curve_shares``, a loop LLVM vectorizes), so an update reads its target from memory.
+Together about 21 % less time per row for ``dual-gradient`` (interleaved runs).
+
 Wins: with ``win_thresholds`` (step tables, the default empirical landscape) a row is won
 iff ``w >= need[row]``, the smallest budget-adjusted value whose shaded bid reaches the
 row's price, so only won first-price rows are shaded; otherwise every row that could win is
