@@ -13,6 +13,7 @@ from __future__ import annotations
 import hashlib
 import os
 import threading
+import time
 from collections.abc import Iterator, Sequence
 from pathlib import Path
 
@@ -47,10 +48,6 @@ from replay.schema import (
 ITER_BATCH_ROWS = 4_000_000
 
 
-def _lit(text: str) -> str:
-    return "'" + text.replace("'", "''") + "'"
-
-
 def _np(col: pa.ChunkedArray | pa.Array, dtype: type) -> np.ndarray:
     """numpy view of an Arrow column: zero-copy for a single null-free chunk."""
     if isinstance(col, pa.ChunkedArray):
@@ -70,21 +67,40 @@ class Catalog:
         if not self.path.is_dir():
             raise InputError(f"{self.path}: no such catalog folder (create one with "
                              "`replay ingest SRC --into CATALOG`)")
-        meta = read_catalog_json(self.path)
-        if meta is None:
-            raise InputError(f"{self.path}: not a catalog (no {CATALOG_JSON}); create one with "
-                             "`replay ingest SRC --into CATALOG`")
+        meta, data = self._read_snapshot()
         self.meta = meta
         self._auction_files, self._rejected_files = committed_files(self.path, meta)
         # The campaign table is small (one row per campaign): held in memory, so budgets
         # stay those of the snapshot too.
-        path = self.path / CAMPAIGNS_FILE
-        data = path.read_bytes() if path.is_file() else None
         self._campaign_table: pa.Table | None = None if data is None else \
             pq.read_table(pa.BufferReader(data))
         self._campaign_sha = None if data is None else hashlib.sha256(data).digest()
         self._local = threading.local()
         self._cache: dict[str, object] = {}
+
+    #: Reads of catalog.json and the campaign table that may meet an ingest's commit
+    #: half-way (it replaces the table, then catalog.json) before giving up.
+    SNAPSHOT_ATTEMPTS = 20
+
+    def _read_snapshot(self) -> tuple[dict, bytes | None]:
+        """``(catalog.json, campaign table bytes)`` of one ingest: read again while the
+        table does not match the digest catalog.json records (an ingest committing in
+        between). Catalogs written before the digest was recorded are read as they are."""
+        table_path = self.path / CAMPAIGNS_FILE
+        for attempt in range(self.SNAPSHOT_ATTEMPTS):
+            meta = read_catalog_json(self.path)
+            if meta is None:
+                raise InputError(f"{self.path}: not a catalog (no {CATALOG_JSON}); create one "
+                                 "with `replay ingest SRC --into CATALOG`")
+            data = table_path.read_bytes() if table_path.is_file() else None
+            want = meta.get("campaigns_sha256")
+            got = None if data is None else hashlib.sha256(data).hexdigest()
+            if want is None or got == want:
+                return meta, data
+            time.sleep(0.01 * (attempt + 1))
+        raise InputError(f"{table_path}: does not match the campaign table {CATALOG_JSON} "
+                         "records (changed outside `replay ingest`?); ingest the campaign "
+                         "table again with `replay ingest SRC --into CATALOG --campaigns FILE`")
 
     # -- pickling: the path and the snapshot (metadata, file lists, campaign table) cross
     # processes, so every worker reads what the parent read even if an ingest commits

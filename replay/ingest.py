@@ -257,7 +257,8 @@ def _q(name: str) -> str:
     return '"' + name.replace('"', '""') + '"'
 
 
-def _lit(text: str) -> str:
+def sql_literal(text: str) -> str:
+    """A SQL string literal of ``text`` (single quotes doubled)."""
     return "'" + text.replace("'", "''") + "'"
 
 
@@ -335,7 +336,7 @@ def _reason_case(ex: dict[str, str]) -> str:
     Values that are present but not numbers count as missing (``missing_value``).
     """
     R = RejectReason
-    pricing_list = ", ".join(_lit(p) for p in PRICING_RULES)
+    pricing_list = ", ".join(sql_literal(p) for p in PRICING_RULES)
     cp, cp_missing = ex["charge_prob"], ex["charge_prob_missing"]
     whens = [
         (ex["ts_missing"], R.MISSING_TS),
@@ -356,7 +357,7 @@ def _reason_case(ex: dict[str, str]) -> str:
     # <= 0 or > 1 is out of range. (DuckDB orders NaN above every number.)
     whens.append((f"NOT ({cp_missing}) AND coalesce(NOT (({cp}) > 0 AND ({cp}) <= 1), TRUE)",
                   R.CHARGE_PROB_OUT_OF_RANGE))
-    body = " ".join(f"WHEN {cond} THEN {_lit(str(reason))}" for cond, reason in whens)
+    body = " ".join(f"WHEN {cond} THEN {sql_literal(str(reason))}" for cond, reason in whens)
     return f"CASE {body} ELSE NULL END"
 
 
@@ -368,7 +369,7 @@ def _accepted_condition(ex: dict[str, str]) -> str:
     took about 1.0 s against 1.2-1.45 s on the CASE's 14 string-valued branches. Each term is
     the negation of one check; a NULL or missing value makes a term NULL, which a filter drops.
     """
-    pricing_list = ", ".join(_lit(p) for p in PRICING_RULES)
+    pricing_list = ", ".join(sql_literal(p) for p in PRICING_RULES)
     cp, cp_missing = ex["charge_prob"], ex["charge_prob_missing"]
     # ts: a missing value parses to NULL as well, so "parsed" covers both checks.
     terms = [f"({ex['ts']}) IS NOT NULL",
@@ -394,7 +395,7 @@ class _Group:
 def _group_view_sql(g: _Group) -> tuple[str, str]:
     """(validated typed select, rejected raw select) for one group."""
     ex = _typed_exprs(g.origin, g.schema)
-    files = "[" + ", ".join(_lit(p) for p in g.scan_paths) + "]"
+    files = "[" + ", ".join(sql_literal(p) for p in g.scan_paths) + "]"
     scan = f"read_parquet({files}, filename='__file', file_row_number=true)"
     # Each typed value is computed once, in the inner select, and the checks read the
     # result: inlined, DuckDB would parse a string column once per check (the checks are
@@ -620,7 +621,7 @@ def committed_files(path: Path, meta: dict) -> tuple[list[str], list[str]]:
 
 def sql_file_list(path: Path, files: Sequence[str]) -> str:
     """A DuckDB list literal of the files (relative to ``path``)."""
-    return "[" + ", ".join(_lit(str(path / f)) for f in files) + "]"
+    return "[" + ", ".join(sql_literal(str(path / f)) for f in files) + "]"
 
 
 def _write_json_atomic(path: Path, data: dict) -> None:
@@ -671,7 +672,7 @@ def connect_duckdb() -> duckdb.DuckDBPyConnection:
 
 def _connect(tmp: Path) -> duckdb.DuckDBPyConnection:
     con = connect_duckdb()
-    con.execute(f"SET temp_directory = {_lit(str(tmp / 'duckdb_tmp'))}")
+    con.execute(f"SET temp_directory = {sql_literal(str(tmp / 'duckdb_tmp'))}")
     # DuckDB folds isnan() to false from Parquet min/max statistics, which never count
     # NaN; without this NaN values would pass the checks. Filter pushdown would move
     # "reason IS NULL" below the select that parses each value once and inline the
@@ -1304,7 +1305,7 @@ def _run_sql(con: duckdb.DuckDBPyConnection, groups: list[_Group], scan_of: dict
             if n_losers:
                 # Only the few loser rows are joined, not the whole input.
                 selects.append(
-                    f"SELECT r.* EXCLUDE (reason), {_lit(dup)} AS reason FROM ({r}) r "
+                    f"SELECT r.* EXCLUDE (reason), {sql_literal(dup)} AS reason FROM ({r}) r "
                     "SEMI JOIN losers USING (__file, file_row_number) WHERE r.reason IS NULL")
         union = " UNION ALL BY NAME ".join(f"({s})" for s in selects)
         con.execute(
@@ -1312,7 +1313,7 @@ def _run_sql(con: duckdb.DuckDBPyConnection, groups: list[_Group], scan_of: dict
             f"u.reason AS {REJECT_REASON_COLUMN}, __files.source_file, "
             "CAST(u.file_row_number + 1 AS BIGINT) AS source_row "
             f"FROM ({union}) u JOIN __files USING (__file) ORDER BY __fidx, file_row_number) "
-            f"TO {_lit(str(out_rejected / ('rejected-' + ingest_id + '.parquet')))} "
+            f"TO {sql_literal(str(out_rejected / ('rejected-' + ingest_id + '.parquet')))} "
             "(FORMAT parquet, COMPRESSION zstd)")
 
     step("summarising")
@@ -1344,6 +1345,10 @@ def _commit(catalog: Path, tmp: Path, meta: dict | None,
     if merged is None:
         merged = CAMPAIGN_SCHEMA.empty_table()
     pq.write_table(merged.cast(CAMPAIGN_SCHEMA), tmp / CAMPAIGNS_FILE)
+    # Readers check the table against this digest: the table is replaced a moment before
+    # catalog.json, and a reader in between must not pair one ingest's table with
+    # another's catalog.json (see Catalog).
+    meta["campaigns_sha256"] = hashlib.sha256((tmp / CAMPAIGNS_FILE).read_bytes()).hexdigest()
 
     if stats is not None:
         report.rows_read = stats["rows_read"]

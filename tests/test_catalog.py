@@ -364,3 +364,46 @@ def test_the_campaign_table_is_part_of_the_snapshot(tmp_path: Path) -> None:
         assert c.campaigns()["k1"].budget == 1.0
         assert c.sql("SELECT budget FROM campaigns WHERE campaign_id = 'k1'")["budget"][0] == 1
     assert Catalog(tmp_path / "cat").campaigns()["k1"].budget == 10.0
+
+
+def test_a_reader_never_pairs_one_ingests_campaign_table_with_anothers_catalog_json(
+        tmp_path: Path, monkeypatch) -> None:
+    """An ingest replaces the campaign table a moment before catalog.json. A reader that
+    opens the catalog in between reads again until the two match (catalog.json records the
+    table's sha256); a table changed outside ingest is one clear error naming the file."""
+    import replay.catalog as catalog_module
+
+    pq.write_table(_table(n=200, seed=7), tmp_path / "log.parquet")
+    (tmp_path / "c1.csv").write_text("campaign_id,budget\nk1,1\n")
+    (tmp_path / "c2.csv").write_text("campaign_id,budget\nk1,10\n")
+    cat = tmp_path / "cat"
+    ingest([tmp_path / "log.parquet"], cat, campaigns=tmp_path / "c1.csv")
+    old_json = (cat / "catalog.json").read_bytes()
+    ingest([], cat, campaigns=tmp_path / "c2.csv")
+    new_json = (cat / "catalog.json").read_bytes()
+    assert json.loads(new_json)["campaigns_sha256"] != json.loads(old_json)["campaigns_sha256"]
+
+    # The half-way state: the new table beside the old catalog.json, which the "ingest"
+    # finishes on the reader's first wait.
+    (cat / "catalog.json").write_bytes(old_json)
+    waits = []
+
+    def finish_commit(seconds: float) -> None:
+        waits.append(seconds)
+        (cat / "catalog.json").write_bytes(new_json)
+
+    monkeypatch.setattr(catalog_module.time, "sleep", finish_commit)
+    assert Catalog(cat).campaigns()["k1"].budget == 10.0
+    assert len(waits) == 1
+
+    # A table replaced by hand, never matching: one line naming the file.
+    monkeypatch.setattr(catalog_module.time, "sleep", lambda seconds: None)
+    edited = pq.read_table(cat / "campaigns.parquet")
+    edited = edited.set_column(edited.schema.get_field_index("budget"), "budget",
+                               pa.array([5.0]))
+    pq.write_table(edited, cat / "campaigns.parquet")
+    with pytest.raises(InputError, match="campaigns.parquet: does not match"):
+        Catalog(cat)
+    # Ingesting the campaign table again repairs it.
+    ingest([], cat, campaigns=tmp_path / "c1.csv")
+    assert Catalog(cat).campaigns()["k1"].budget == 1.0
