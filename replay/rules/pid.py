@@ -31,8 +31,10 @@ def pid_update(state, params, fb):
     budget = fb[rl.FB_BUDGET]
     norm = fb[rl.FB_NORM]
     k_exp = budget / norm
-    e = (fb[rl.FB_CUM_TARGET] - cum) / budget
-    state[S_INTEGRAL] += e / k_exp
+    # Multiplying by reciprocals that hold no spend: per request, the next bid then waits
+    # on no division after this row's spend (10 % less time per row, interleaved runs).
+    e = (fb[rl.FB_CUM_TARGET] - cum) * (1.0 / budget)
+    state[S_INTEGRAL] += e * (norm / budget)
     d = (e - state[S_PREV]) * k_exp
     state[S_PREV] = e
     x = -(params[P_KP] * e + params[P_KI] * state[S_INTEGRAL] + params[P_KD] * d)
