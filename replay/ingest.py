@@ -549,6 +549,21 @@ def read_campaign_table(path: str | Path) -> pa.Table:
     return pa.Table.from_arrays(arrays, schema=CAMPAIGN_SCHEMA)
 
 
+def _read_catalog_campaigns(path: Path) -> pa.Table | None:
+    """The catalog's campaign table as it stands (None before the first), checked against
+    ``CAMPAIGN_SCHEMA``: a table written outside ingest fails here with its file named."""
+    if not path.is_file():
+        return None
+    try:
+        table = pq.read_table(path)
+        return table.select(CAMPAIGN_SCHEMA.names).cast(CAMPAIGN_SCHEMA)
+    except (pa.ArrowException, KeyError, ValueError) as exc:
+        want = ", ".join(CAMPAIGN_SCHEMA.names)
+        raise InputError(f"{path}: not a campaign table of this catalog (columns {want}): "
+                         f"{str(exc).splitlines()[0]}; restore it or ingest into a new "
+                         "catalog") from None
+
+
 def _merge_campaigns(old: pa.Table | None, new: pa.Table) -> pa.Table:
     """Rows of ``new`` replace rows of ``old`` with the same campaign_id (upsert), sorted."""
     if old is None or old.num_rows == 0:
@@ -1340,7 +1355,7 @@ def _commit(catalog: Path, tmp: Path, meta: dict | None,
                     "placements": []}
     # Campaign table: upsert into the existing one; write to tmp first.
     campaigns_path = catalog / CAMPAIGNS_FILE
-    old_table = pq.read_table(campaigns_path) if campaigns_path.is_file() else None
+    old_table = _read_catalog_campaigns(campaigns_path)
     merged = old_table if table is None else _merge_campaigns(old_table, table)
     if merged is None:
         merged = CAMPAIGN_SCHEMA.empty_table()

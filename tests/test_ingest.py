@@ -446,3 +446,19 @@ def test_what_a_dead_ingest_left_is_cleared_by_the_next(tmp_path: Path) -> None:
                for w in report.warnings), report.warnings
     assert Catalog(cat).row_count() == n_a + n_b
     assert part.exists()  # committed files stay
+
+
+def test_a_campaign_table_broken_outside_ingest_is_one_line_naming_it(tmp_path) -> None:
+    """The next ingest reads the catalog's campaign table to upsert into it: one written by
+    hand without the catalog's columns is an InputError naming the file, and nothing of
+    the new ingest is committed."""
+    from replay.ingest import CAMPAIGNS_FILE
+
+    (tmp_path / "c1.csv").write_text("campaign_id,budget\nk1,1\n")
+    cat = tmp_path / "cat"
+    ingest([], cat, campaigns=tmp_path / "c1.csv")
+    pq.write_table(pa.table({"campaign_id": ["k9"], "budget": [5.0]}), cat / CAMPAIGNS_FILE)
+    before = (cat / "catalog.json").read_bytes()
+    with pytest.raises(InputError, match=r"campaigns\.parquet: not a campaign table"):
+        ingest([], cat, campaigns=tmp_path / "c1.csv")
+    assert (cat / "catalog.json").read_bytes() == before
