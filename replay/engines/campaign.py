@@ -292,10 +292,14 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
         fast = bool(fast)
     else:  # the per-row shading loop reads neither array
         fast, need, above_w = False, np.zeros(0), np.zeros(0)
-    # Per-request schedules decide wins by comparing lambda with a per-row threshold (the
-    # per-request stretch of the loop; same decisions as ``w >= need``).
-    theta = (rl.win_lambdas(value, need) if fast and schedule.every_n == 1
-             and not rule.fixed_bid and not rule.uses_index
+    use_fused = path == "fused" or (path == "auto" and _fused_ok(rule))
+    # The loop build with the per-request stretch, only where the stretch runs: one row per
+    # update, win thresholds, no index, series buckets of 2+ rows (more rows than
+    # series_max). Its wins compare lambda with a per-row bound (``rl.win_lambdas``: the
+    # same decisions as ``w >= need``), computed here once and only for it.
+    one_row = (use_fused and fast and schedule.every_n == 1 and not rule.uses_index
+               and len(rows) > max(int(series_max), 1))
+    theta = (rl.win_lambdas(value, need) if one_row and not rule.fixed_bid
              and bool(np.all(value >= 0.0)) and bool(np.all(need >= 0.0)) else np.zeros(0))
     auctions_per_placement = (np.bincount(plc, minlength=len(placements))[:len(placements)]
                               if len(rows) else np.zeros(len(placements), np.int64))
@@ -337,7 +341,6 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
         capf = float(cap) if cap else 0.0
         common = (ts, value, price, cprob, plc, fp, uniforms, sampled, every_n, every_us, start,
                   end, curve_t, curve_f, float(spec.budget), norm, float(expected))
-        use_fused = path == "fused" or (path == "auto" and _fused_ok(rule))
         fb = np.zeros(rl.FB_SIZE)
         tail = (capf, bool(rule.fixed_bid), pbid, shade_on, *shade_args, UNIT, MASK, fast, need,
                 above_w, theta, acc, won, pl_acc, series, group, fb)
@@ -350,9 +353,6 @@ def prepare_replay(replay: CampaignArrays, train: CampaignArrays, spec: Campaign
             index = rule.index_ if rule.uses_index else ftl_index_new(1)
             _check_update_takes_tuple(rule)
             try:
-                # The loop build with the per-request stretch, only where the stretch runs:
-                # one row per update, win thresholds, no index, series buckets of 2+ rows.
-                one_row = every_n == 1 and fast and not rule.uses_index and group > 1
                 rl.replay_fused(type(rule).numba_update, rule.state_,
                                 np.ascontiguousarray(rule.params_, np.float64), index,
                                 bool(rule.uses_index), *common, *tail, 0, total_k,
