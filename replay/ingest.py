@@ -565,13 +565,14 @@ def _read_catalog_campaigns(path: Path) -> pa.Table | None:
 
 
 def _merge_campaigns(old: pa.Table | None, new: pa.Table) -> pa.Table:
-    """Rows of ``new`` replace rows of ``old`` with the same campaign_id (upsert), sorted."""
+    """Rows of ``new`` replace rows of ``old`` with the same campaign_id (upsert), sorted;
+    both in ``CAMPAIGN_SCHEMA`` (``old`` from ``_read_catalog_campaigns``)."""
     if old is None or old.num_rows == 0:
         merged = new
     else:
         keep = set(new.column("campaign_id").to_pylist())
         mask = pa.array([c not in keep for c in old.column("campaign_id").to_pylist()])
-        merged = pa.concat_tables([old.filter(mask).cast(CAMPAIGN_SCHEMA), new])
+        merged = pa.concat_tables([old.filter(mask), new])
     return merged.sort_by("campaign_id")
 
 
