@@ -31,7 +31,6 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.parquet as pq
 
 from replay.errors import InputError, ReplayError, UsageError
 from replay.schema import (
@@ -39,7 +38,6 @@ from replay.schema import (
     PARTITION_COLUMN,
     CampaignArrays,
     CampaignSpec,
-    datetime_us,
 )
 
 #: Default Spark master when none is given and the program was not started by spark-submit.
@@ -338,17 +336,6 @@ def catalog_placements(spark: Any, catalog_path: str | Path) -> list[tuple[str, 
     return sorted((r["placement"], r["pricing"]) for r in rows)
 
 
-def read_campaign_table(spark: Any, catalog_path: str | Path) -> pa.Table:
-    """``campaigns.parquet`` of the catalog as Arrow (small: one row per campaign)."""
-    root = str(catalog_path).rstrip("/")
-    path = f"{root}/campaigns.parquet"
-    if "://" not in root:
-        if not Path(path).is_file():
-            raise InputError(f"{path}: missing; the catalog needs a campaign table")
-        return pq.read_table(path)
-    return _to_arrow(spark.read.parquet(path))
-
-
 def _to_arrow(df: Any) -> pa.Table:
     if hasattr(df, "toArrow"):  # pyspark >= 4.0
         return df.toArrow()
@@ -491,24 +478,6 @@ def group_row_counts(catalog_path: str | Path, *, window: tuple[int | None, int 
     spark = spark or get_session(master)
     df = read_catalog_frame(spark, catalog_path, ["campaign_id"], window)
     return {r[0]: int(r[1]) for r in df.groupBy("campaign_id").count().collect()}
-
-
-def specs_from_table(table: pa.Table) -> dict[str, CampaignSpec]:
-    """campaigns.parquet rows as CampaignSpec (timestamps to microseconds UTC)."""
-    def us(v: Any) -> int | None:
-        if v is None:
-            return None
-        if isinstance(v, datetime):
-            return datetime_us(v)
-        return int(v)
-
-    out: dict[str, CampaignSpec] = {}
-    for r in table.to_pylist():
-        out[r["campaign_id"]] = CampaignSpec(
-            campaign_id=r["campaign_id"], budget=float(r["budget"]),
-            start_us=us(r.get("start")), end_us=us(r.get("end")),
-            max_cost_per_result=r.get("max_cost_per_result"), group_id=r.get("group_id"))
-    return out
 
 
 # --------------------------------------------------------------------------- hindsight
